@@ -1,0 +1,122 @@
+//! A CSV file as text cells with their line numbers; no typing here.
+
+use super::decode_utf8;
+use crate::error::{Error, ErrorKind, Location, Problem};
+
+/// A CSV file: its header and rows of text cells, with the line on which each
+/// row starts (1-based, counting the header as line 1 for a simple file).
+#[derive(Debug, Clone)]
+pub struct Table {
+    pub file: String,
+    pub headers: Vec<String>,
+    pub rows: Vec<Vec<String>>,
+    pub lines: Vec<usize>,
+}
+
+impl Table {
+    pub fn column_index(&self, name: &str) -> Option<usize> {
+        self.headers.iter().position(|header| header == name)
+    }
+
+    /// The location of one cell, for error messages.
+    pub fn cell_location(&self, row: usize, column: usize) -> Location {
+        Location {
+            file: self.file.clone(),
+            line: self.lines.get(row).copied(),
+            column: Some(column + 1),
+            path: self.headers.get(column).map(|header| format!("column {header}")),
+        }
+    }
+}
+
+/// Parse CSV bytes with a header row. Rejects: invalid UTF-8, an empty file, a
+/// header without data rows, empty or duplicate column names, and rows with
+/// the wrong number of fields.
+pub fn read_table(bytes: &[u8], file: &str) -> Result<Table, Error> {
+    let text = decode_utf8(bytes, file)?;
+    let located = |line: Option<usize>, message: String| {
+        Error::one(Problem::new(ErrorKind::DataFormat, message).at(Location { file: file.to_string(), line, column: None, path: None }))
+    };
+    if text.trim().is_empty() {
+        return Err(located(None, "the file is empty; expected a header row and one row per subject".to_string()));
+    }
+    // The csv reader counts lines correctly only for LF endings, so CRLF is
+    // folded to LF first (the raw bytes, not this text, are what is hashed).
+    let text = text.replace("\r\n", "\n");
+    let mut reader = csv::ReaderBuilder::new().has_headers(true).flexible(false).from_reader(text.as_bytes());
+    let headers: Vec<String> = match reader.headers() {
+        Ok(record) => record.iter().map(|header| header.trim().to_string()).collect(),
+        Err(cause) => return Err(located(Some(1), format!("cannot read the header row: {}", describe_csv(&cause)))),
+    };
+    for (index, header) in headers.iter().enumerate() {
+        if header.is_empty() {
+            return Err(Error::one(
+                Problem::new(ErrorKind::DataFormat, format!("column {} has no name in the header row", index + 1))
+                    .at(Location { file: file.to_string(), line: Some(1), column: Some(index + 1), path: None }),
+            ));
+        }
+        if let Some(first) = headers[..index].iter().position(|earlier| earlier == header) {
+            return Err(Error::one(
+                Problem::new(ErrorKind::DataFormat, format!("column name \"{header}\" appears twice (columns {} and {})", first + 1, index + 1))
+                    .at(Location { file: file.to_string(), line: Some(1), column: Some(index + 1), path: None }),
+            ));
+        }
+    }
+    let mut rows = Vec::new();
+    let mut lines = Vec::new();
+    for record in reader.records() {
+        match record {
+            Ok(record) => {
+                let line = record.position().map(|position| position.line() as usize).unwrap_or(0);
+                rows.push(record.iter().map(str::to_string).collect());
+                lines.push(line);
+            }
+            Err(cause) => {
+                let line = cause.position().map(|position| position.line() as usize);
+                return Err(located(line, describe_csv(&cause)));
+            }
+        }
+    }
+    if rows.is_empty() {
+        return Err(located(Some(1), "the file has a header row but no data rows".to_string()));
+    }
+    Ok(Table { file: file.to_string(), headers, rows, lines })
+}
+
+fn describe_csv(cause: &csv::Error) -> String {
+    match cause.kind() {
+        csv::ErrorKind::UnequalLengths { expected_len, len, .. } => {
+            format!("this row has {len} fields but the header has {expected_len}; check for a stray or missing delimiter")
+        }
+        csv::ErrorKind::Utf8 { .. } => "a field is not valid UTF-8".to_string(),
+        _ => cause.to_string().to_lowercase(),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn crlf_and_bom_read_like_lf() {
+        let lf = read_table(b"ID,X\n1,2\n3,4\n", "a.csv").expect("reads");
+        let crlf = read_table(b"\xEF\xBB\xBFID,X\r\n1,2\r\n3,4\r\n", "a.csv").expect("reads");
+        assert_eq!(lf.headers, crlf.headers);
+        assert_eq!(lf.rows, crlf.rows);
+        assert_eq!(crlf.lines, vec![2, 3]);
+    }
+
+    #[test]
+    fn ragged_rows_name_their_line() {
+        let error = read_table(b"ID,X\n1,2\n3,4,5\n", "a.csv").unwrap_err();
+        assert_eq!(error.kind(), ErrorKind::DataFormat);
+        assert_eq!(error.problems[0].location.as_ref().and_then(|l| l.line), Some(3));
+    }
+
+    #[test]
+    fn header_only_and_duplicate_columns_are_errors() {
+        assert!(read_table(b"ID,X\n", "a.csv").unwrap_err().problems[0].message.contains("no data rows"));
+        let duplicate = read_table(b"ID,X,X\n1,2,3\n", "a.csv").unwrap_err();
+        assert_eq!(duplicate.problems[0].location.as_ref().and_then(|l| l.column), Some(3));
+    }
+}

@@ -1,0 +1,320 @@
+//! Design: from a planned analysis and typed data to a model matrix.
+//!
+//! For one analysis this stage selects the subjects (the population's flag,
+//! then complete cases on the endpoint, covariates and strata, counting who is
+//! left out and why), applies the plan's rule for pooling small strata, and
+//! builds the design matrix with named columns: an intercept, one indicator per
+//! non-reference arm (in plan order), numeric covariates as slopes, and factor
+//! covariates and strata as treatment-coded fixed effects whose first level
+//! present is the reference. Every column records the term it belongs to, so
+//! a later stage can name an aliased term instead of a column number.
+//!
+//! Pure: no I/O. It never fits a model and never changes the data it is given.
+
+use crate::data::{Column, StudyData};
+use crate::error::{Error, ErrorKind, Problem};
+use crate::plan::{Analysis, Plan};
+use nalgebra::DMatrix;
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum TermKind {
+    Intercept,
+    Treatment,
+    Covariate,
+    Stratum,
+}
+
+/// A model term: one or more adjacent design columns.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Term {
+    pub name: String,
+    pub kind: TermKind,
+    pub first_column: usize,
+    pub column_count: usize,
+}
+
+/// Subjects left out of an analysis because a value was missing, per arm.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Exclusion {
+    /// The variable whose missing value excluded them (the first one missing,
+    /// in the order endpoint, covariates, strata).
+    pub variable: String,
+    pub per_arm: Vec<usize>,
+}
+
+/// What the pooling rule did to one stratification factor.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PoolingOutcome {
+    pub variable: String,
+    /// The small levels merged, with their analysed subject counts, in level order.
+    pub pooled_levels: Vec<(String, usize)>,
+    pub into: String,
+    pub pooled_size: usize,
+    pub threshold: usize,
+}
+
+#[derive(Debug, Clone)]
+pub struct Design {
+    /// n × p, column-major.
+    pub matrix: DMatrix<f64>,
+    pub response: Vec<f64>,
+    pub column_names: Vec<String>,
+    /// Index into `terms` for every column.
+    pub column_terms: Vec<usize>,
+    pub terms: Vec<Term>,
+    /// Per arm: its indicator column, `None` for the reference arm.
+    pub treatment_columns: Vec<Option<usize>>,
+    /// Indices into the study data of the analysed subjects.
+    pub analysed: Vec<usize>,
+    /// Arm index per analysed subject.
+    pub arm_of_row: Vec<usize>,
+    /// Per arm: subjects in the population, and analysed.
+    pub in_population: Vec<usize>,
+    pub analysed_per_arm: Vec<usize>,
+    pub exclusions: Vec<Exclusion>,
+    pub pooling: Vec<PoolingOutcome>,
+}
+
+impl Design {
+    pub fn n_rows(&self) -> usize {
+        self.matrix.nrows()
+    }
+}
+
+/// Categorical values of one factor for the analysed rows after pooling.
+struct FactorValues {
+    levels: Vec<String>,
+    codes: Vec<usize>,
+}
+
+/// Build the design of `analysis` from `data`.
+pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Design, Error> {
+    let arms = &plan.data.treatment.arms;
+    let population = &plan.populations[analysis.population];
+    let fail = |message: String| Error::one(Problem::new(ErrorKind::DataValue, format!("analysis \"{}\": {message}", analysis.id)));
+
+    let Column::Categorical { levels: flag_levels, codes: flag_codes } = &data.columns[population.column] else {
+        return Err(Error::internal("population flag column is not categorical"));
+    };
+    let in_population: Vec<usize> = (0..data.subject_ids.len())
+        .filter(|&row| flag_codes[row].is_some_and(|code| population.values.contains(&flag_levels[code])))
+        .collect();
+    let mut in_population_per_arm = vec![0; arms.len()];
+    for &row in &in_population {
+        in_population_per_arm[data.arms[row]] += 1;
+    }
+
+    let mut needed: Vec<usize> = vec![analysis.endpoint.variable];
+    needed.extend(&analysis.covariates);
+    needed.extend(&analysis.strata);
+    let mut exclusions: Vec<Exclusion> = Vec::new();
+    let mut analysed = Vec::with_capacity(in_population.len());
+    for &row in &in_population {
+        match needed.iter().find(|&&variable| data.columns[variable].is_missing(row)) {
+            None => analysed.push(row),
+            Some(&variable) => {
+                let name = &plan.variables[variable].name;
+                let position = match exclusions.iter().position(|exclusion| &exclusion.variable == name) {
+                    Some(position) => position,
+                    None => {
+                        exclusions.push(Exclusion { variable: name.clone(), per_arm: vec![0; arms.len()] });
+                        exclusions.len() - 1
+                    }
+                };
+                exclusions[position].per_arm[data.arms[row]] += 1;
+            }
+        }
+    }
+    // Report exclusions in the fixed order of the variables, not discovery order.
+    exclusions.sort_by_key(|exclusion| needed.iter().position(|&variable| plan.variables[variable].name == exclusion.variable));
+
+    let mut analysed_per_arm = vec![0; arms.len()];
+    for &row in &analysed {
+        analysed_per_arm[data.arms[row]] += 1;
+    }
+    if analysed.is_empty() {
+        return Err(fail(format!("no subject in population \"{}\" has the endpoint and every covariate", population.id)));
+    }
+    for (arm, count) in analysed_per_arm.iter().enumerate() {
+        if *count == 0 {
+            return Err(fail(format!("arm \"{}\" has no analysed subjects in population \"{}\"", arms[arm].code, population.id)));
+        }
+    }
+
+    let mut pooling = Vec::new();
+    let mut strata_values: Vec<(String, FactorValues)> = Vec::new();
+    for &stratum in &analysis.strata {
+        let values = factor_values(&data.columns[stratum], &analysed)?;
+        let name = plan.variables[stratum].name.clone();
+        let values = match &analysis.pool_small_strata {
+            Some(rule) => {
+                let (pooled, outcome) = pool(values, rule.below, &rule.into, &name);
+                if let Some(outcome) = outcome {
+                    pooling.push(outcome);
+                }
+                pooled
+            }
+            None => values,
+        };
+        strata_values.push((name, values));
+    }
+
+    let n = analysed.len();
+    let mut column_names = vec!["(intercept)".to_string()];
+    let mut columns: Vec<Vec<f64>> = vec![vec![1.0; n]];
+    let mut terms = vec![Term { name: "(intercept)".to_string(), kind: TermKind::Intercept, first_column: 0, column_count: 1 }];
+    let mut column_terms = vec![0];
+
+    let mut treatment_columns = vec![None; arms.len()];
+    let treatment_term = terms.len();
+    let first = columns.len();
+    for (arm_index, arm) in arms.iter().enumerate() {
+        if arm_index == plan.data.treatment.reference {
+            continue;
+        }
+        treatment_columns[arm_index] = Some(columns.len());
+        columns.push(analysed.iter().map(|&row| f64::from(u8::from(data.arms[row] == arm_index))).collect());
+        column_names.push(format!("treatment = {}", arm.label));
+        column_terms.push(treatment_term);
+    }
+    terms.push(Term { name: "treatment".to_string(), kind: TermKind::Treatment, first_column: first, column_count: columns.len() - first });
+
+    for &covariate in &analysis.covariates {
+        let name = plan.variables[covariate].name.clone();
+        let term_index = terms.len();
+        let first = columns.len();
+        match &data.columns[covariate] {
+            Column::Numeric(values) => {
+                columns.push(analysed.iter().map(|&row| values[row].unwrap_or(0.0)).collect());
+                column_names.push(name.clone());
+                column_terms.push(term_index);
+            }
+            Column::Categorical { .. } => {
+                let values = factor_values(&data.columns[covariate], &analysed)?;
+                push_indicators(&name, &values, &mut columns, &mut column_names, &mut column_terms, term_index);
+            }
+        }
+        terms.push(Term { name, kind: TermKind::Covariate, first_column: first, column_count: columns.len() - first });
+    }
+    for (name, values) in &strata_values {
+        let term_index = terms.len();
+        let first = columns.len();
+        push_indicators(name, values, &mut columns, &mut column_names, &mut column_terms, term_index);
+        terms.push(Term { name: name.clone(), kind: TermKind::Stratum, first_column: first, column_count: columns.len() - first });
+    }
+    // A term with no columns (a factor with one level present) carries no information.
+    let terms: Vec<Term> = terms;
+
+    let Column::Numeric(endpoint) = &data.columns[analysis.endpoint.variable] else {
+        return Err(Error::internal("endpoint column is not numeric"));
+    };
+    let response: Vec<f64> = analysed.iter().map(|&row| endpoint[row].unwrap_or(0.0)).collect();
+    let mut matrix = DMatrix::zeros(n, columns.len());
+    for (index, column) in columns.iter().enumerate() {
+        matrix.set_column(index, &nalgebra::DVector::from_column_slice(column));
+    }
+    let arm_of_row = analysed.iter().map(|&row| data.arms[row]).collect();
+    Ok(Design {
+        matrix,
+        response,
+        column_names,
+        column_terms,
+        terms,
+        treatment_columns,
+        analysed,
+        arm_of_row,
+        in_population: in_population_per_arm,
+        analysed_per_arm,
+        exclusions,
+        pooling,
+    })
+}
+
+fn factor_values(column: &Column, rows: &[usize]) -> Result<FactorValues, Error> {
+    let Column::Categorical { levels, codes } = column else {
+        return Err(Error::internal("a factor term refers to a numeric column"));
+    };
+    // Keep only the levels present among the analysed subjects, in level order.
+    let mut present = vec![false; levels.len()];
+    for &row in rows {
+        if let Some(code) = codes[row] {
+            present[code] = true;
+        }
+    }
+    let mut remap = vec![usize::MAX; levels.len()];
+    let mut kept = Vec::new();
+    for (index, level) in levels.iter().enumerate() {
+        if present[index] {
+            remap[index] = kept.len();
+            kept.push(level.clone());
+        }
+    }
+    let codes = rows.iter().map(|&row| codes[row].map(|code| remap[code]).unwrap_or(0)).collect();
+    Ok(FactorValues { levels: kept, codes })
+}
+
+/// Merge every level with fewer than `below` subjects into one level `into`,
+/// placed last. Returns the recoded values and what was done (None when no
+/// level was small).
+fn pool(values: FactorValues, below: usize, into: &str, variable: &str) -> (FactorValues, Option<PoolingOutcome>) {
+    let mut counts = vec![0usize; values.levels.len()];
+    for &code in &values.codes {
+        counts[code] += 1;
+    }
+    let small: Vec<bool> = counts.iter().map(|&count| count < below).collect();
+    if !small.iter().any(|&is_small| is_small) {
+        return (values, None);
+    }
+    let mut remap = vec![0; values.levels.len()];
+    let mut levels = Vec::new();
+    for (index, level) in values.levels.iter().enumerate() {
+        if !small[index] {
+            remap[index] = levels.len();
+            levels.push(level.clone());
+        }
+    }
+    let pooled_code = levels.len();
+    levels.push(into.to_string());
+    for (index, is_small) in small.iter().enumerate() {
+        if *is_small {
+            remap[index] = pooled_code;
+        }
+    }
+    let pooled_levels: Vec<(String, usize)> =
+        values.levels.iter().zip(&counts).zip(&small).filter(|(_, is_small)| **is_small).map(|((level, count), _)| (level.clone(), *count)).collect();
+    let pooled_size = pooled_levels.iter().map(|(_, count)| count).sum();
+    let codes = values.codes.iter().map(|&code| remap[code]).collect();
+    let outcome = PoolingOutcome { variable: variable.to_string(), pooled_levels, into: into.to_string(), pooled_size, threshold: below };
+    (FactorValues { levels, codes }, Some(outcome))
+}
+
+fn push_indicators(
+    name: &str,
+    values: &FactorValues,
+    columns: &mut Vec<Vec<f64>>,
+    column_names: &mut Vec<String>,
+    column_terms: &mut Vec<usize>,
+    term_index: usize,
+) {
+    for (level_index, level) in values.levels.iter().enumerate().skip(1) {
+        columns.push(values.codes.iter().map(|&code| f64::from(u8::from(code == level_index))).collect());
+        column_names.push(format!("{name} = {level}"));
+        column_terms.push(term_index);
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn pooling_merges_small_levels_into_one_last_level() {
+        let values = FactorValues { levels: vec!["A".into(), "B".into(), "C".into()], codes: vec![0, 0, 0, 1, 2, 2, 2] };
+        let (pooled, outcome) = pool(values, 3, "pooled", "SITE");
+        assert_eq!(pooled.levels, vec!["A", "C", "pooled"]);
+        assert_eq!(pooled.codes, vec![0, 0, 0, 2, 1, 1, 1]);
+        let outcome = outcome.expect("B is small");
+        assert_eq!(outcome.pooled_levels, vec![("B".to_string(), 1)]);
+        assert_eq!(outcome.pooled_size, 1);
+    }
+}

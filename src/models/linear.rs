@@ -1,0 +1,803 @@
+//! Least-squares engine for the linear model (ANCOVA): takes a finished design
+//! matrix and a response, returns coefficients, their unscaled covariance,
+//! fitted values, residuals and the columns that are aliased. It owns the
+//! numerics only — a Householder QR with deferred column pivoting for rank
+//! detection, followed by iterative refinement of the augmented least-squares
+//! system with residuals accumulated in double-double arithmetic. It must not
+//! know about plans, variable names, factor levels, p-values or reports; the
+//! caller names the columns and does the inference. No I/O, no panics on user
+//! data, and no NaN in any returned value.
+//!
+//! # Method
+//!
+//! 1. **Exact equilibration.** Every column is multiplied by a power of two so
+//!    that its largest absolute entry is near 1 (in [1, 2) up to the rounding
+//!    of a base-2 logarithm). Power-of-two scaling is
+//!    exact in binary floating point, so it changes no digit of the problem;
+//!    it keeps sums of squares away from overflow and underflow.
+//! 2. **Householder QR with deferred pivoting** (Golub & Van Loan, *Matrix
+//!    Computations*, 4th ed., §5.2 and §5.4.2; the same strategy as the LINPACK
+//!    routine behind R's `lm`). Columns are taken in the caller's order. Before
+//!    column `j` is reduced, the norm of its part orthogonal to the columns
+//!    already accepted is computed afresh (not downdated). If that norm is at
+//!    most `rank_tolerance` times the column's own norm, the column is declared
+//!    aliased and moved to the end; otherwise it becomes the next pivot.
+//! 3. **Iterative refinement** of the augmented system
+//!    `[I A; Aᵀ 0] [r; x] = [b; c]` (Björck 1967, "Iterative refinement of
+//!    linear least squares solutions I", *BIT* 7:257–278; Björck, *Numerical
+//!    Methods for Least Squares Problems*, SIAM 1996, §2.9). The residuals
+//!    `b − r − A x` and `c − Aᵀ r` are accumulated with error-free
+//!    transformations (Ogita, Rump & Oishi 2005, "Accurate sum and dot
+//!    product", *SIAM J. Sci. Comput.* 26:1955–1988: two-sum, and two-product
+//!    via `f64::mul_add`), which is as accurate as computing them in twice the
+//!    working precision; the corrections are solved with the same QR factors.
+//!    The least-squares solution uses `b = y, c = 0`. Column `j` of the
+//!    unscaled covariance `(AᵀA)⁻¹` is the `x` part of the same system with
+//!    `b = 0, c = −e_j` (then `r = −A x` and `AᵀA x = e_j`), so the
+//!    covariance is refined in the same way rather than taken from a plain
+//!    triangular inverse.
+//!
+//! # Why the rank test is per column and relative
+//!
+//! The decision "is column `j` numerically in the span of the columns before
+//! it" compares the column's distance to that span with its own length. The
+//! ratio is invariant to rescaling any column (units of a covariate, or a
+//! column of powers that is 10¹³ times larger than the intercept), which is
+//! exactly what equilibrating the columns before testing `|R_kk|` against the
+//! largest `|R_kk|` tries to achieve; here it holds by construction. An exact
+//! duplicate, dummies that add up to the intercept, or any exact linear
+//! combination of stored doubles leaves a ratio of zero or a few units of
+//! rounding (measured 0 to 1e-15 on the constructed designs in
+//! `tests/rank_detection.rs`). The degree-10 polynomial of the NIST StRD
+//! Filip data set, which is full rank but badly conditioned, has a smallest
+//! ratio of about 5e-8 (measured by bisection on the tolerance). The default
+//! tolerance of 1e-11 sits between the two, with between three and four
+//! orders of magnitude of room on each side; `tests/nist_strd.rs` checks that
+//! Filip stays full rank at 1e-9 and loses a column at 1e-7 (R's `lm` uses
+//! 1e-7 by default and drops a Filip term).
+//!
+//! Deferred pivoting, rather than pivoting on the largest remaining norm, is
+//! deliberate: when columns are aliased the later ones in the caller's order
+//! are the ones reported (the last dummy of a factor whose dummies add up to
+//! the intercept, the second copy of a duplicated covariate), so the choice
+//! does not depend on the data values and matches what statisticians expect
+//! from common software. Householder QR is backward stable without pivoting,
+//! so accuracy is not lost by this choice.
+
+use nalgebra::DMatrix;
+use std::fmt;
+
+/// Settings of [`fit_least_squares`]. Build with `Default::default()` unless a
+/// plan asks for something else; [`fit_least_squares`] checks them.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LeastSquaresOptions {
+    /// A column is aliased when its distance to the span of the columns
+    /// accepted before it is at most this fraction of its own Euclidean norm.
+    /// Must be finite and in `[0, 1)`. Default `1e-11`; see the module notes.
+    pub rank_tolerance: f64,
+    /// Upper bound on refinement steps after the first solve, for the
+    /// coefficients and for each column of the covariance. Default 10; in
+    /// practice refinement stops after one to three steps (NIST StRD data).
+    pub max_refinement_steps: usize,
+}
+
+impl Default for LeastSquaresOptions {
+    fn default() -> Self {
+        LeastSquaresOptions {
+            rank_tolerance: 1e-11,
+            max_refinement_steps: 10,
+        }
+    }
+}
+
+/// Result of [`fit_least_squares`]. All vectors are in the caller's column and
+/// row order; every number is finite.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LeastSquaresFit {
+    /// Number of rows of the design.
+    pub n_observations: usize,
+    /// Number of columns of the design, aliased ones included.
+    pub n_columns: usize,
+    /// Numerical rank: the number of columns that were not aliased.
+    pub rank: usize,
+    /// One entry per design column; `None` for an aliased column. The others
+    /// are the least-squares coefficients of the design without the aliased
+    /// columns.
+    pub coefficients: Vec<Option<f64>>,
+    /// Indices (0-based, ascending) of the aliased design columns.
+    pub aliased_columns: Vec<usize>,
+    /// `(XᵀX)⁻¹` of the non-aliased columns, placed as a `p × p` matrix in the
+    /// caller's column order; rows and columns of aliased columns are zero.
+    /// Multiply by the residual variance for the covariance of the estimates.
+    pub unscaled_covariance: DMatrix<f64>,
+    /// Fitted values `X β`, one per row.
+    pub fitted: Vec<f64>,
+    /// Residuals `y − X β`, one per row, computed in double-double arithmetic.
+    pub residuals: Vec<f64>,
+    /// Sum of squared residuals.
+    pub residual_sum_of_squares: f64,
+    /// `n_observations − rank`, always at least 1.
+    pub residual_df: usize,
+    /// Refinement steps applied to the coefficients after the first solve.
+    pub refinement_steps: usize,
+    /// Whether the coefficient refinement met its convergence test (a
+    /// correction below one unit of rounding of the coefficients). `false`
+    /// means it stopped because corrections stopped shrinking, or at the step
+    /// limit; the coefficients are then the best iterate reached, and the
+    /// problem is close to the limit of what double precision can resolve.
+    pub refinement_converged: bool,
+}
+
+impl LeastSquaresFit {
+    /// Residual standard deviation `sqrt(RSS / residual_df)`. `Some` for
+    /// every fit this module returns (the residual df is at least 1); the
+    /// `Option` keeps the signature honest should that ever change.
+    pub fn residual_standard_deviation(&self) -> Option<f64> {
+        if self.residual_df == 0 {
+            return None;
+        }
+        let value = (self.residual_sum_of_squares / self.residual_df as f64).sqrt();
+        value.is_finite().then_some(value)
+    }
+
+    /// Standard errors `s · sqrt([(XᵀX)⁻¹]_jj)` of the coefficients; `None`
+    /// for an aliased column.
+    pub fn coefficient_standard_errors(&self) -> Vec<Option<f64>> {
+        let sigma = self.residual_standard_deviation();
+        (0..self.n_columns)
+            .map(|column| {
+                let variance_factor = self.unscaled_covariance[(column, column)];
+                match (sigma, self.coefficients[column]) {
+                    (Some(sigma), Some(_)) if variance_factor >= 0.0 => {
+                        Some(sigma * variance_factor.sqrt())
+                    }
+                    _ => None,
+                }
+            })
+            .collect()
+    }
+
+    /// Coefficient of determination. With an intercept it is
+    /// `1 − RSS / Σ(y − ȳ)²`; without one it is the uncentred
+    /// `1 − RSS / Σ y²` (the definition NIST StRD certifies for its
+    /// no-intercept data sets, and the one common software reports). The
+    /// caller says which applies because the engine cannot know whether some
+    /// combination of columns is meant as the intercept. `None` when the
+    /// response length differs from the fit's or the total sum of squares is
+    /// zero (a constant response), where R² is undefined.
+    pub fn r_squared(&self, response: &[f64], has_intercept: bool) -> Option<f64> {
+        if response.len() != self.n_observations || response.is_empty() {
+            return None;
+        }
+        let centre = if has_intercept {
+            let mut sum = DoubleDouble::zero();
+            for &value in response {
+                sum.add(value);
+            }
+            sum.value() / response.len() as f64
+        } else {
+            0.0
+        };
+        let mut total = DoubleDouble::zero();
+        for &value in response {
+            let deviation = value - centre;
+            total.add_product(deviation, deviation);
+        }
+        let total_sum_of_squares = total.value();
+        if total_sum_of_squares <= 0.0 || !total_sum_of_squares.is_finite() {
+            return None;
+        }
+        let value = 1.0 - self.residual_sum_of_squares / total_sum_of_squares;
+        value.is_finite().then_some(value)
+    }
+}
+
+/// Why [`fit_least_squares`] could not produce a fit. Each variant carries
+/// the values that were wrong.
+#[derive(Debug, Clone, PartialEq)]
+pub enum LeastSquaresError {
+    /// The design has no rows or no columns.
+    EmptyDesign {
+        n_observations: usize,
+        n_columns: usize,
+    },
+    /// The response length differs from the number of design rows.
+    DimensionMismatch {
+        design_rows: usize,
+        response_length: usize,
+    },
+    /// A design entry is NaN or infinite (0-based row and column).
+    NonFiniteDesign { row: usize, column: usize },
+    /// A response value is NaN or infinite (0-based row).
+    NonFiniteResponse { row: usize },
+    /// An option is outside its allowed range.
+    InvalidOption {
+        name: &'static str,
+        value: f64,
+        expected: &'static str,
+    },
+    /// Every column is zero or otherwise unusable, so nothing can be estimated.
+    NoEstimableColumns { n_columns: usize },
+    /// The number of observations does not exceed the rank, so the residual
+    /// variance cannot be estimated.
+    NoResidualDegreesOfFreedom { n_observations: usize, rank: usize },
+    /// An intermediate quantity overflowed (data of extreme magnitude).
+    NumericalFailure { detail: &'static str },
+}
+
+impl fmt::Display for LeastSquaresError {
+    fn fmt(&self, formatter: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            LeastSquaresError::EmptyDesign {
+                n_observations,
+                n_columns,
+            } => write!(
+                formatter,
+                "the design matrix is empty ({n_observations} rows, {n_columns} columns); \
+                 expected at least one row and one column"
+            ),
+            LeastSquaresError::DimensionMismatch {
+                design_rows,
+                response_length,
+            } => write!(
+                formatter,
+                "the response has {response_length} values but the design has {design_rows} rows"
+            ),
+            LeastSquaresError::NonFiniteDesign { row, column } => write!(
+                formatter,
+                "design entry at row {} column {} is not a finite number",
+                row + 1,
+                column + 1
+            ),
+            LeastSquaresError::NonFiniteResponse { row } => {
+                write!(
+                    formatter,
+                    "response value at row {} is not a finite number",
+                    row + 1
+                )
+            }
+            LeastSquaresError::InvalidOption {
+                name,
+                value,
+                expected,
+            } => {
+                write!(formatter, "option {name} is {value}; expected {expected}")
+            }
+            LeastSquaresError::NoEstimableColumns { n_columns } => write!(
+                formatter,
+                "none of the {n_columns} design columns can be estimated (all are zero or aliased)"
+            ),
+            LeastSquaresError::NoResidualDegreesOfFreedom {
+                n_observations,
+                rank,
+            } => write!(
+                formatter,
+                "{n_observations} observations do not exceed the rank {rank} of the design, \
+                 so no residual degrees of freedom remain"
+            ),
+            LeastSquaresError::NumericalFailure { detail } => {
+                write!(formatter, "least-squares fit failed numerically: {detail}")
+            }
+        }
+    }
+}
+
+impl std::error::Error for LeastSquaresError {}
+
+/// Fits `response ≈ design · β` by least squares.
+///
+/// Requirements: `design` is `n × p` with `n ≥ 1`, `p ≥ 1`, all entries
+/// finite; `response` has `n` finite values; the rank `k` found must satisfy
+/// `n > k`. Aliased columns (see the module notes) get `None` coefficients
+/// and zero rows/columns in the covariance; the remaining coefficients are
+/// those of the design with the aliased columns removed.
+///
+/// References: Golub & Van Loan (2013) §5.2–5.4 for the QR; Björck (1967,
+/// 1996 §2.9) for the refinement; Ogita, Rump & Oishi (2005) for the
+/// accumulation. Accuracy is checked against the NIST StRD linear regression
+/// data sets in `tests/nist_strd.rs`.
+pub fn fit_least_squares(
+    design: &DMatrix<f64>,
+    response: &[f64],
+    options: &LeastSquaresOptions,
+) -> Result<LeastSquaresFit, LeastSquaresError> {
+    check_options(options)?;
+    let (n_observations, n_columns) = design.shape();
+    if n_observations == 0 || n_columns == 0 {
+        return Err(LeastSquaresError::EmptyDesign {
+            n_observations,
+            n_columns,
+        });
+    }
+    if response.len() != n_observations {
+        return Err(LeastSquaresError::DimensionMismatch {
+            design_rows: n_observations,
+            response_length: response.len(),
+        });
+    }
+    for column in 0..n_columns {
+        for row in 0..n_observations {
+            if !design[(row, column)].is_finite() {
+                return Err(LeastSquaresError::NonFiniteDesign { row, column });
+            }
+        }
+    }
+    if let Some(row) = response.iter().position(|value| !value.is_finite()) {
+        return Err(LeastSquaresError::NonFiniteResponse { row });
+    }
+
+    let (scaled_columns, column_scales) = equilibrate(design);
+    let factorization = PivotedQr::new(&scaled_columns, options.rank_tolerance);
+    let rank = factorization.kept.len();
+    if rank == 0 {
+        return Err(LeastSquaresError::NoEstimableColumns { n_columns });
+    }
+    if n_observations <= rank {
+        return Err(LeastSquaresError::NoResidualDegreesOfFreedom {
+            n_observations,
+            rank,
+        });
+    }
+    let kept_columns: Vec<&[f64]> = factorization
+        .kept
+        .iter()
+        .map(|&column| scaled_columns[column].as_slice())
+        .collect();
+
+    // Coefficients of the scaled, reduced problem: b = y, c = 0.
+    let solution = refined_augmented_solve(
+        &factorization,
+        &kept_columns,
+        response,
+        &vec![0.0; rank],
+        options.max_refinement_steps,
+    );
+
+    let mut coefficients = vec![None; n_columns];
+    for (position, &column) in factorization.kept.iter().enumerate() {
+        coefficients[column] = Some(solution.x[position] * column_scales[column]);
+    }
+
+    // Unscaled covariance, one refined column at a time: b = 0, c = −e_t.
+    let mut scaled_inverse = DMatrix::<f64>::zeros(rank, rank);
+    let zero_response = vec![0.0; n_observations];
+    for target in 0..rank {
+        let mut unit = vec![0.0; rank];
+        unit[target] = -1.0;
+        let column_solution = refined_augmented_solve(
+            &factorization,
+            &kept_columns,
+            &zero_response,
+            &unit,
+            options.max_refinement_steps,
+        );
+        for position in 0..rank {
+            scaled_inverse[(position, target)] = column_solution.x[position];
+        }
+    }
+    let mut unscaled_covariance = DMatrix::<f64>::zeros(n_columns, n_columns);
+    for (first, &column_a) in factorization.kept.iter().enumerate() {
+        for (second, &column_b) in factorization.kept.iter().enumerate() {
+            // Each column was solved separately; averaging the two mirror
+            // entries makes the matrix exactly symmetric.
+            let symmetric =
+                0.5 * (scaled_inverse[(first, second)] + scaled_inverse[(second, first)]);
+            unscaled_covariance[(column_a, column_b)] =
+                symmetric * column_scales[column_a] * column_scales[column_b];
+        }
+    }
+
+    // Fitted values and residuals from the final coefficients, in the
+    // original units and in double-double, so that they agree with the
+    // coefficients to the last digit.
+    let mut fitted = vec![0.0; n_observations];
+    let mut residuals = vec![0.0; n_observations];
+    let mut residual_squares = DoubleDouble::zero();
+    for row in 0..n_observations {
+        let mut prediction = DoubleDouble::zero();
+        for (column, coefficient) in coefficients.iter().enumerate() {
+            if let Some(coefficient) = coefficient {
+                prediction.add_product(design[(row, column)], *coefficient);
+            }
+        }
+        fitted[row] = prediction.value();
+        let mut residual = DoubleDouble::zero();
+        residual.add(response[row]);
+        residual.subtract(&prediction);
+        residuals[row] = residual.value();
+        residual_squares.add_product(residuals[row], residuals[row]);
+    }
+    let residual_sum_of_squares = residual_squares.value();
+
+    let all_finite = coefficients.iter().flatten().all(|value| value.is_finite())
+        && unscaled_covariance.iter().all(|value| value.is_finite())
+        && fitted
+            .iter()
+            .chain(residuals.iter())
+            .all(|value| value.is_finite())
+        && residual_sum_of_squares.is_finite();
+    if !all_finite {
+        return Err(LeastSquaresError::NumericalFailure {
+            detail: "an intermediate value overflowed; rescale the data",
+        });
+    }
+    let covariance_diagonal_valid = factorization
+        .kept
+        .iter()
+        .all(|&column| unscaled_covariance[(column, column)] > 0.0);
+    if !covariance_diagonal_valid {
+        return Err(LeastSquaresError::NumericalFailure {
+            detail: "a diagonal element of the inverse cross-product matrix is not positive",
+        });
+    }
+
+    Ok(LeastSquaresFit {
+        n_observations,
+        n_columns,
+        rank,
+        coefficients,
+        aliased_columns: factorization.aliased.clone(),
+        unscaled_covariance,
+        fitted,
+        residuals,
+        residual_sum_of_squares,
+        residual_df: n_observations - rank,
+        refinement_steps: solution.refinement_steps,
+        refinement_converged: solution.converged,
+    })
+}
+
+fn check_options(options: &LeastSquaresOptions) -> Result<(), LeastSquaresError> {
+    let tolerance = options.rank_tolerance;
+    if !(tolerance.is_finite() && (0.0..1.0).contains(&tolerance)) {
+        return Err(LeastSquaresError::InvalidOption {
+            name: "rank_tolerance",
+            value: tolerance,
+            expected: "a finite number in [0, 1)",
+        });
+    }
+    Ok(())
+}
+
+/// Scales every column by a power of two so that its largest absolute entry
+/// lies in [1, 2). Returns the scaled columns and, per column, the factor by
+/// which a scaled-problem coefficient must be multiplied to give the original
+/// one (which is the same factor that was applied to the column). A zero
+/// column keeps factor 1.
+fn equilibrate(design: &DMatrix<f64>) -> (Vec<Vec<f64>>, Vec<f64>) {
+    let (n_observations, n_columns) = design.shape();
+    let mut scaled_columns = Vec::with_capacity(n_columns);
+    let mut column_scales = Vec::with_capacity(n_columns);
+    for column in 0..n_columns {
+        let largest = (0..n_observations)
+            .map(|row| design[(row, column)].abs())
+            .fold(0.0_f64, f64::max);
+        let scale = if largest > 0.0 {
+            // Clamping keeps 2^exponent a normal number, so the scaling stays exact
+            // except for entries that would become subnormal anyway.
+            let exponent = (largest.log2().floor() as i32).clamp(-1000, 1000);
+            2.0_f64.powi(-exponent)
+        } else {
+            1.0
+        };
+        scaled_columns.push(
+            (0..n_observations)
+                .map(|row| design[(row, column)] * scale)
+                .collect(),
+        );
+        column_scales.push(scale);
+    }
+    (scaled_columns, column_scales)
+}
+
+/// Euclidean norm without overflow for entries of moderate size (the columns
+/// are equilibrated, so plain summation of squares is safe).
+fn euclidean_norm(values: &[f64]) -> f64 {
+    values.iter().map(|value| value * value).sum::<f64>().sqrt()
+}
+
+/// Householder QR of the accepted columns, in pivot order. Reflector `t` is
+/// `H_t = I − β_t v_t v_tᵀ` acting on rows `t..n`.
+struct PivotedQr {
+    n_observations: usize,
+    /// Original column indices of the accepted columns, in pivot order.
+    kept: Vec<usize>,
+    /// Original column indices of the aliased columns, ascending.
+    aliased: Vec<usize>,
+    /// Upper-triangular factor, `rank × rank`, row-major by `[row][column]`.
+    triangular: Vec<Vec<f64>>,
+    reflector_vectors: Vec<Vec<f64>>,
+    reflector_betas: Vec<f64>,
+}
+
+impl PivotedQr {
+    fn new(scaled_columns: &[Vec<f64>], rank_tolerance: f64) -> PivotedQr {
+        let n_observations = scaled_columns.first().map_or(0, Vec::len);
+        let mut work: Vec<Vec<f64>> = scaled_columns.to_vec();
+        let mut kept = Vec::new();
+        let mut aliased = Vec::new();
+        let mut upper_columns: Vec<Vec<f64>> = Vec::new();
+        let mut reflector_vectors = Vec::new();
+        let mut reflector_betas = Vec::new();
+
+        for column in 0..work.len() {
+            let step = kept.len();
+            let own_norm = euclidean_norm(&work[column]);
+            // Reflections are orthogonal, so the norm of rows step..n of the
+            // transformed column is the column's distance to the span of the
+            // columns already accepted.
+            let remaining_norm = if step < n_observations {
+                euclidean_norm(&work[column][step..])
+            } else {
+                0.0
+            };
+            if own_norm == 0.0 || remaining_norm <= rank_tolerance * own_norm {
+                aliased.push(column);
+                continue;
+            }
+            let pivot_part = &work[column][step..];
+            let leading = pivot_part[0];
+            // The sign choice avoids cancellation in v_0 = x_0 − α.
+            let alpha = if leading >= 0.0 {
+                -remaining_norm
+            } else {
+                remaining_norm
+            };
+            let mut vector = pivot_part.to_vec();
+            vector[0] = leading - alpha;
+            let vector_norm_squared: f64 = vector.iter().map(|value| value * value).sum();
+            let beta = 2.0 / vector_norm_squared;
+
+            let mut upper = work[column][..step].to_vec();
+            upper.push(alpha);
+            upper_columns.push(upper);
+
+            for later_column in work.iter_mut().skip(column + 1) {
+                apply_reflector(&vector, beta, &mut later_column[step..]);
+            }
+            kept.push(column);
+            reflector_vectors.push(vector);
+            reflector_betas.push(beta);
+        }
+
+        let rank = kept.len();
+        let mut triangular = vec![vec![0.0; rank]; rank];
+        for (column_position, upper) in upper_columns.iter().enumerate() {
+            for (row_position, value) in upper.iter().enumerate() {
+                triangular[row_position][column_position] = *value;
+            }
+        }
+        PivotedQr {
+            n_observations,
+            kept,
+            aliased,
+            triangular,
+            reflector_vectors,
+            reflector_betas,
+        }
+    }
+
+    /// Solves `[I A; Aᵀ 0] [r; x] = [f; g]` for the accepted columns `A`,
+    /// with `A = Q [R; 0]`: `Rᵀ e₁ = g`, `d = Qᵀ f`, `R x = d₁ − e₁`,
+    /// `r = Q [e₁; d₂]` (Björck 1996, §2.9.2).
+    fn solve_augmented(&self, f: &[f64], g: &[f64]) -> (Vec<f64>, Vec<f64>) {
+        let rank = self.kept.len();
+        let mut rotated = f.to_vec();
+        for step in 0..rank {
+            apply_reflector(
+                &self.reflector_vectors[step],
+                self.reflector_betas[step],
+                &mut rotated[step..],
+            );
+        }
+        // Forward substitution with Rᵀ.
+        let mut e_top = vec![0.0; rank];
+        for row in 0..rank {
+            let mut value = g[row];
+            for (earlier, solved) in e_top.iter().enumerate().take(row) {
+                value -= self.triangular[earlier][row] * solved;
+            }
+            e_top[row] = value / self.triangular[row][row];
+        }
+        // Back substitution with R.
+        let mut x = vec![0.0; rank];
+        for row in (0..rank).rev() {
+            let mut value = rotated[row] - e_top[row];
+            for (later, solved) in x.iter().enumerate().skip(row + 1) {
+                value -= self.triangular[row][later] * solved;
+            }
+            x[row] = value / self.triangular[row][row];
+        }
+        let mut r = rotated;
+        r[..rank].copy_from_slice(&e_top);
+        for step in (0..rank).rev() {
+            apply_reflector(
+                &self.reflector_vectors[step],
+                self.reflector_betas[step],
+                &mut r[step..],
+            );
+        }
+        debug_assert_eq!(r.len(), self.n_observations);
+        (r, x)
+    }
+}
+
+fn apply_reflector(vector: &[f64], beta: f64, target: &mut [f64]) {
+    let projection: f64 = vector.iter().zip(target.iter()).map(|(v, t)| v * t).sum();
+    let factor = beta * projection;
+    for (value, v) in target.iter_mut().zip(vector) {
+        *value -= factor * v;
+    }
+}
+
+struct AugmentedSolution {
+    x: Vec<f64>,
+    refinement_steps: usize,
+    converged: bool,
+}
+
+/// Solves the augmented system for right-hand side `(b, c)` and refines it.
+/// A correction is accepted only while corrections shrink by at least half
+/// per step (the classical stopping rule for mixed-precision refinement,
+/// which also guards against a problem too ill-conditioned to refine); the
+/// loop ends when the correction is below one unit of rounding of `x`.
+fn refined_augmented_solve(
+    factorization: &PivotedQr,
+    kept_columns: &[&[f64]],
+    b: &[f64],
+    c: &[f64],
+    max_refinement_steps: usize,
+) -> AugmentedSolution {
+    let (mut r, mut x) = factorization.solve_augmented(b, c);
+    let mut previous_correction = max_abs(&x);
+    let mut refinement_steps = 0;
+    let mut converged = false;
+    let n_observations = b.len();
+    for _ in 0..max_refinement_steps {
+        // f = b − r − A x and g = c − Aᵀ r, each in double-double.
+        let mut f = vec![0.0; n_observations];
+        for row in 0..n_observations {
+            let mut accumulator = DoubleDouble::zero();
+            accumulator.add(b[row]);
+            accumulator.add(-r[row]);
+            for (position, column) in kept_columns.iter().enumerate() {
+                accumulator.add_product(-column[row], x[position]);
+            }
+            f[row] = accumulator.value();
+        }
+        let g: Vec<f64> = kept_columns
+            .iter()
+            .enumerate()
+            .map(|(position, column)| {
+                let mut accumulator = DoubleDouble::zero();
+                accumulator.add(c[position]);
+                for row in 0..n_observations {
+                    accumulator.add_product(-column[row], r[row]);
+                }
+                accumulator.value()
+            })
+            .collect();
+        let (r_correction, x_correction) = factorization.solve_augmented(&f, &g);
+        let correction = max_abs(&x_correction);
+        if correction == 0.0 {
+            converged = true;
+            break;
+        }
+        // A NaN correction also stops here (every comparison with NaN is false).
+        let shrinking = correction <= 0.5 * previous_correction;
+        if !shrinking {
+            break;
+        }
+        for (value, delta) in x.iter_mut().zip(&x_correction) {
+            *value += delta;
+        }
+        for (value, delta) in r.iter_mut().zip(&r_correction) {
+            *value += delta;
+        }
+        refinement_steps += 1;
+        if correction <= f64::EPSILON * max_abs(&x) {
+            converged = true;
+            break;
+        }
+        previous_correction = correction;
+    }
+    AugmentedSolution {
+        x,
+        refinement_steps,
+        converged,
+    }
+}
+
+fn max_abs(values: &[f64]) -> f64 {
+    values
+        .iter()
+        .fold(0.0_f64, |largest, value| largest.max(value.abs()))
+}
+
+/// Unevaluated sum `high + low` used to accumulate sums and dot products as
+/// accurately as in twice the working precision (Ogita, Rump & Oishi 2005,
+/// algorithms Sum2 and Dot2).
+#[derive(Debug, Clone, Copy)]
+struct DoubleDouble {
+    high: f64,
+    low: f64,
+}
+
+impl DoubleDouble {
+    fn zero() -> DoubleDouble {
+        DoubleDouble {
+            high: 0.0,
+            low: 0.0,
+        }
+    }
+
+    /// Adds `value`, keeping the rounding error of the addition (Knuth's
+    /// two-sum, exact for any ordering of magnitudes).
+    fn add(&mut self, value: f64) {
+        let sum = self.high + value;
+        let value_part = sum - self.high;
+        let error = (self.high - (sum - value_part)) + (value - value_part);
+        self.high = sum;
+        self.low += error;
+    }
+
+    /// Adds `a · b`, keeping the rounding error of the product, obtained
+    /// exactly with one fused multiply-add.
+    fn add_product(&mut self, a: f64, b: f64) {
+        let product = a * b;
+        let product_error = a.mul_add(b, -product);
+        self.add(product);
+        self.low += product_error;
+    }
+
+    fn subtract(&mut self, other: &DoubleDouble) {
+        self.add(-other.high);
+        self.low -= other.low;
+    }
+
+    fn value(&self) -> f64 {
+        self.high + self.low
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // Common practice: an orthogonal design has (XᵀX)⁻¹ = diag(1/‖x_j‖²)
+    // and coefficients xⱼᵀy/‖x_j‖²; values here are exact in binary.
+    #[test]
+    fn orthogonal_design_gives_textbook_values() {
+        let design = DMatrix::from_column_slice(4, 2, &[1.0, 1.0, 1.0, 1.0, 1.0, -1.0, 1.0, -1.0]);
+        let response = [3.0, 1.0, 4.0, 2.0];
+        let fit = fit_least_squares(&design, &response, &LeastSquaresOptions::default())
+            .expect("orthogonal design fits");
+        let relative = |a: f64, b: f64| ((a - b) / b).abs();
+        // Tolerance 1e-15 relative: exact problem, only final rounding.
+        assert!(relative(fit.coefficients[0].unwrap(), 2.5) < 1e-15);
+        assert!(relative(fit.coefficients[1].unwrap(), 1.0) < 1e-15);
+        assert!(relative(fit.unscaled_covariance[(0, 0)], 0.25) < 1e-15);
+        assert!(fit.unscaled_covariance[(0, 1)].abs() < 1e-15);
+        // RSS = Σ(y − ŷ)² with ŷ = (3.5, 1.5, 3.5, 1.5): 0.25·4 = 1.
+        assert!(relative(fit.residual_sum_of_squares, 1.0) < 1e-15);
+        assert_eq!(fit.residual_df, 2);
+    }
+
+    // Common practice: two-sum and two-product are error-free, so
+    // (1e16 + 1) − 1e16 is recovered exactly.
+    #[test]
+    fn double_double_keeps_low_order_digits() {
+        let mut sum = DoubleDouble::zero();
+        sum.add(1e16);
+        sum.add(1.0);
+        sum.add(-1e16);
+        assert_eq!(sum.value(), 1.0);
+        let mut product = DoubleDouble::zero();
+        let a = 1.0 + f64::EPSILON;
+        product.add_product(a, a);
+        product.add(-1.0);
+        product.add(-2.0 * f64::EPSILON);
+        // (1 + ε)² − 1 − 2ε = ε², exact.
+        assert_eq!(product.value(), f64::EPSILON * f64::EPSILON);
+    }
+}

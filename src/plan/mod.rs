@@ -1,0 +1,292 @@
+//! The plan: what the statistician fixed before unblinding, as typed values.
+//!
+//! Reading a plan has two stages. `yaml.rs` turns the file into a located
+//! YAML tree; `validate.rs` walks that tree, collects every problem (unknown
+//! keys with a did-you-mean hint, wrong types, dangling references) with its
+//! file, line, column and YAML path, and only when there are none builds the
+//! [`Plan`] below. Downstream stages see resolved indices (an analysis holds
+//! the index of its population, a contrast the indices of its arms), never a
+//! raw name that might not exist.
+//!
+//! This module reads the plan file only; it never opens the data files it
+//! names (that is `data`'s job) and knows nothing about fitting.
+
+mod validate;
+pub mod yaml;
+
+use crate::error::{Error, ErrorKind, Location, Problem};
+use std::path::{Path, PathBuf};
+
+/// The schema version this build of cairn reads.
+pub const SCHEMA_VERSION: u64 = 1;
+
+/// A validated plan.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Plan {
+    pub study: Study,
+    pub data: DataSpec,
+    /// Every column the plan uses, in file order.
+    pub variables: Vec<Variable>,
+    pub populations: Vec<Population>,
+    pub analyses: Vec<Analysis>,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct Study {
+    pub id: String,
+    pub title: String,
+    /// The familywise significance level.
+    pub alpha: f64,
+    pub sides: Sides,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Sides {
+    One,
+    Two,
+}
+
+impl Sides {
+    pub fn count(self) -> u32 {
+        match self {
+            Sides::One => 1,
+            Sides::Two => 2,
+        }
+    }
+}
+
+/// Where the data are and how the two files join.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DataSpec {
+    /// Blinded subject-level file, relative to the plan's folder.
+    pub subjects: String,
+    /// The subject key column, present in both files.
+    pub key: String,
+    pub treatment: TreatmentSpec,
+    /// Cell values that mean "missing".
+    pub missing_codes: Vec<String>,
+    /// What to do with a subject present in one file and not the other.
+    pub unmatched: UnmatchedRule,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum UnmatchedRule {
+    /// Stop with an error naming the subjects.
+    Error,
+    /// Leave them out of every analysis and count them in the subject flow.
+    Exclude,
+}
+
+/// The randomisation list: a separate file, read only after unblinding.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TreatmentSpec {
+    pub file: String,
+    pub column: String,
+    /// The arms in plan order; the order fixes the design's dummy columns.
+    pub arms: Vec<Arm>,
+    /// Index into `arms` of the reference (control) arm.
+    pub reference: usize,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct Arm {
+    /// The code as it appears in the allocation file.
+    pub code: String,
+    /// The name shown in the report.
+    pub label: String,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct Variable {
+    pub name: String,
+    pub kind: VariableKind,
+    pub label: Option<String>,
+}
+
+impl Variable {
+    pub fn display_name(&self) -> &str {
+        self.label.as_deref().unwrap_or(&self.name)
+    }
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub enum VariableKind {
+    /// A real number.
+    Numeric,
+    /// A non-negative whole number.
+    Count,
+    /// Unordered categories; `None` means the levels are taken from the data, sorted.
+    Factor { levels: Option<Vec<String>> },
+    /// Ordered categories, lowest first.
+    Ordinal { levels: Vec<String> },
+}
+
+impl VariableKind {
+    pub fn name(&self) -> &'static str {
+        match self {
+            VariableKind::Numeric => "numeric",
+            VariableKind::Count => "count",
+            VariableKind::Factor { .. } => "factor",
+            VariableKind::Ordinal { .. } => "ordinal",
+        }
+    }
+}
+
+/// A subset of subjects: those whose `column` holds one of `values`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Population {
+    pub id: String,
+    pub label: String,
+    /// Index into `Plan::variables`.
+    pub column: usize,
+    pub values: Vec<String>,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct Analysis {
+    pub id: String,
+    pub title: String,
+    pub role: Role,
+    pub endpoint: Endpoint,
+    /// Index into `Plan::populations`.
+    pub population: usize,
+    pub model: ModelSpec,
+    /// Indices into `Plan::variables`: numeric covariates enter as slopes,
+    /// factor covariates as treatment-coded fixed effects.
+    pub covariates: Vec<usize>,
+    /// Indices into `Plan::variables`: stratification factors, entered as fixed
+    /// effects after the pooling rule is applied.
+    pub strata: Vec<usize>,
+    pub pool_small_strata: Option<PoolingRule>,
+    pub contrasts: Vec<Contrast>,
+    /// Two-sided confidence level of every interval in this analysis.
+    pub confidence_level: f64,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Role {
+    Primary,
+    KeySecondary,
+    Secondary,
+    Sensitivity,
+    Supplementary,
+    Exploratory,
+}
+
+impl Role {
+    pub fn name(self) -> &'static str {
+        match self {
+            Role::Primary => "primary",
+            Role::KeySecondary => "key secondary",
+            Role::Secondary => "secondary",
+            Role::Sensitivity => "sensitivity",
+            Role::Supplementary => "supplementary",
+            Role::Exploratory => "exploratory",
+        }
+    }
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct Endpoint {
+    /// Index into `Plan::variables`.
+    pub variable: usize,
+    pub kind: EndpointKind,
+    pub higher_is: Direction,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum EndpointKind {
+    Continuous,
+}
+
+impl EndpointKind {
+    pub fn name(self) -> &'static str {
+        match self {
+            EndpointKind::Continuous => "continuous",
+        }
+    }
+}
+
+/// Whether a higher endpoint value is good or bad news for the subject; the
+/// report's sentences use it to say which arm a difference favours.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Direction {
+    Better,
+    Worse,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ModelSpec {
+    /// Normal linear model fitted by least squares (ANCOVA when covariates are present).
+    Linear,
+}
+
+/// Strata with fewer than `below` analysed subjects are merged into one level named `into`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PoolingRule {
+    pub below: usize,
+    pub into: String,
+}
+
+/// A planned comparison: `arm` minus `versus`, as indices into the arms.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Contrast {
+    pub id: String,
+    pub arm: usize,
+    pub versus: usize,
+}
+
+/// A plan together with the bytes it was read from and where it lives.
+#[derive(Debug, Clone)]
+pub struct LoadedPlan {
+    pub plan: Plan,
+    /// The raw bytes of the plan file, exactly as hashed.
+    pub bytes: Vec<u8>,
+    /// The plan's file name as shown in reports (no folders: outputs must not
+    /// depend on where the study folder sits on a machine).
+    pub file_name: String,
+    /// The study folder: the plan's own folder, against which data paths resolve.
+    pub folder: PathBuf,
+}
+
+impl LoadedPlan {
+    /// Resolve a data path named in the plan. Paths must stay inside the study
+    /// folder: absolute paths and `..` components are refused so that a plan
+    /// cannot reach files its reviewers were not given.
+    pub fn resolve(&self, relative: &str) -> Result<PathBuf, Error> {
+        resolve_inside(&self.folder, relative, &self.file_name)
+    }
+}
+
+fn resolve_inside(folder: &Path, relative: &str, plan_file: &str) -> Result<PathBuf, Error> {
+    let candidate = Path::new(relative);
+    let escapes = candidate.is_absolute()
+        || candidate.components().any(|component| !matches!(component, std::path::Component::Normal(_) | std::path::Component::CurDir));
+    if escapes {
+        return Err(Error::one(
+            Problem::new(
+                ErrorKind::PlanSchema,
+                format!("data path \"{relative}\" leaves the study folder; give a path relative to the plan's folder without \"..\""),
+            )
+            .at(Location::file(plan_file)),
+        ));
+    }
+    Ok(folder.join(candidate))
+}
+
+/// Read and validate a plan file.
+pub fn load(path: &Path) -> Result<LoadedPlan, Error> {
+    let file_name = path.file_name().map(|name| name.to_string_lossy().into_owned()).unwrap_or_else(|| path.display().to_string());
+    let bytes = std::fs::read(path).map_err(|cause| Error::io(&path.display().to_string(), "read the plan", &cause))?;
+    let plan = parse(&bytes, &file_name)?;
+    let folder = path.parent().map(Path::to_path_buf).unwrap_or_default();
+    let folder = if folder.as_os_str().is_empty() { PathBuf::from(".") } else { folder };
+    Ok(LoadedPlan { plan, bytes, file_name, folder })
+}
+
+/// Validate plan bytes; `file` names the file in errors.
+pub fn parse(bytes: &[u8], file: &str) -> Result<Plan, Error> {
+    let text = crate::data::decode_utf8(bytes, file)?;
+    let root = yaml::parse(text, file)?;
+    validate::validate(&root, file)
+}

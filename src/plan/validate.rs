@@ -1,0 +1,836 @@
+//! From a located YAML tree to a typed [`Plan`], collecting every problem.
+//!
+//! The walk is strict: a key the schema does not know is an error (with the
+//! closest known key as a hint), so is a value of the wrong type, a missing
+//! required key, and a name that refers to nothing (an arm, a variable, a
+//! population). Each problem carries the file, line, column and YAML path.
+//! Validation continues past a problem wherever it can, so one run of
+//! `cairn check` lists everything that needs fixing.
+//!
+//! The key-by-key schema is documented in plans/README.md; keep the two in step.
+
+use super::yaml::{Node, NodeValue};
+use super::*;
+use crate::error::{did_you_mean, Error, ErrorKind, Location, Problem};
+
+pub(super) fn validate(root: &Node, file: &str) -> Result<Plan, Error> {
+    let mut reader = Reader { file, problems: Vec::new() };
+    let plan = read_plan(&mut reader, root);
+    match plan {
+        Some(plan) if reader.problems.is_empty() => Ok(plan),
+        _ => {
+            if reader.problems.is_empty() {
+                return Err(Error::internal("plan validation failed without naming a problem"));
+            }
+            Err(Error { problems: reader.problems })
+        }
+    }
+}
+
+/// Walks nodes and records problems; every method returns `None` after
+/// recording why, so callers can carry on with the rest of the plan.
+struct Reader<'f> {
+    file: &'f str,
+    problems: Vec<Problem>,
+}
+
+/// The fields of one YAML mapping that passed the key check.
+struct Fields<'n> {
+    node: &'n Node,
+    path: String,
+    pairs: Vec<(&'n str, &'n Node)>,
+}
+
+impl<'n> Fields<'n> {
+    fn get(&self, key: &str) -> Option<&'n Node> {
+        self.pairs.iter().find(|(name, _)| *name == key).map(|(_, value)| *value).filter(|value| !value.is_null())
+    }
+
+    fn child(&self, key: &str) -> String {
+        join_path(&self.path, key)
+    }
+}
+
+fn join_path(path: &str, key: &str) -> String {
+    if path.is_empty() { key.to_string() } else { format!("{path}.{key}") }
+}
+
+impl<'f> Reader<'f> {
+    fn location(&self, node: &Node, path: &str) -> Location {
+        Location {
+            file: self.file.to_string(),
+            line: Some(node.line),
+            column: Some(node.column),
+            path: if path.is_empty() { None } else { Some(path.to_string()) },
+        }
+    }
+
+    fn report(&mut self, kind: ErrorKind, node: &Node, path: &str, message: String) {
+        let location = self.location(node, path);
+        self.problems.push(Problem::new(kind, message).at(location));
+    }
+
+    fn report_with_hint(&mut self, kind: ErrorKind, node: &Node, path: &str, message: String, hint: Option<String>) {
+        let location = self.location(node, path);
+        let mut problem = Problem::new(kind, message).at(location);
+        problem.hint = hint;
+        self.problems.push(problem);
+    }
+
+    /// Check that `node` is a mapping whose keys are all in `allowed` and that
+    /// every key in `required` is present (and not null).
+    fn mapping<'n>(&mut self, node: &'n Node, path: &str, allowed: &[&str], required: &[&str]) -> Option<Fields<'n>> {
+        let NodeValue::Mapping(pairs) = &node.value else {
+            self.report(ErrorKind::PlanSchema, node, path, format!("expected a mapping of keys to values; found {}", node.describe()));
+            return None;
+        };
+        let mut fields = Fields { node, path: path.to_string(), pairs: Vec::new() };
+        for (key, value) in pairs {
+            let Some((name, _)) = key.as_scalar() else {
+                self.report(ErrorKind::PlanSchema, key, path, "a key must be plain text".to_string());
+                continue;
+            };
+            if allowed.contains(&name) {
+                fields.pairs.push((name, value));
+            } else {
+                let hint = did_you_mean(name, allowed.iter().copied()).map(|known| format!("did you mean \"{known}\"?"));
+                let expected = allowed.join(", ");
+                self.report_with_hint(
+                    ErrorKind::PlanSchema,
+                    key,
+                    &join_path(path, name),
+                    format!("unknown key \"{name}\"; expected one of: {expected}"),
+                    hint,
+                );
+            }
+        }
+        for key in required {
+            if fields.get(key).is_none() {
+                self.report(ErrorKind::PlanSchema, node, path, format!("missing required key \"{key}\""));
+            }
+        }
+        Some(fields)
+    }
+
+    /// A mapping whose keys are names chosen by the user (variables, populations).
+    fn named_entries<'n>(&mut self, node: &'n Node, path: &str) -> Vec<(&'n str, &'n Node, &'n Node)> {
+        let NodeValue::Mapping(pairs) = &node.value else {
+            self.report(ErrorKind::PlanSchema, node, path, format!("expected a mapping of names to definitions; found {}", node.describe()));
+            return Vec::new();
+        };
+        let mut entries = Vec::new();
+        for (key, value) in pairs {
+            match key.as_scalar() {
+                Some((name, _)) if !name.trim().is_empty() => entries.push((name, key, value)),
+                _ => self.report(ErrorKind::PlanSchema, key, path, "a name must be non-empty text".to_string()),
+            }
+        }
+        entries
+    }
+
+    fn text(&mut self, node: &Node, path: &str) -> Option<String> {
+        match node.as_scalar() {
+            Some((text, _)) if !node.is_null() && !text.trim().is_empty() => Some(text.to_string()),
+            _ => {
+                self.report(ErrorKind::PlanSchema, node, path, format!("expected non-empty text; found {}", node.describe()));
+                None
+            }
+        }
+    }
+
+    /// A name (identifier) chosen by the user: letters, digits, `-`, `_`, `.`.
+    fn identifier(&mut self, node: &Node, path: &str) -> Option<String> {
+        let text = self.text(node, path)?;
+        if text.chars().all(|character| character.is_alphanumeric() || matches!(character, '-' | '_' | '.')) {
+            Some(text)
+        } else {
+            self.report(
+                ErrorKind::PlanSchema,
+                node,
+                path,
+                format!("\"{text}\" is not a valid name; use letters, digits, \"-\", \"_\" or \".\""),
+            );
+            None
+        }
+    }
+
+    fn number(&mut self, node: &Node, path: &str) -> Option<f64> {
+        if let Some((text, false)) = node.as_scalar() {
+            if let Ok(value) = text.parse::<f64>() {
+                if value.is_finite() && looks_numeric(text) {
+                    return Some(value);
+                }
+            }
+        }
+        self.report(ErrorKind::PlanSchema, node, path, format!("expected a number; found {}", node.describe()));
+        None
+    }
+
+    fn whole_number(&mut self, node: &Node, path: &str) -> Option<u64> {
+        if let Some((text, false)) = node.as_scalar() {
+            if let Ok(value) = text.parse::<u64>() {
+                return Some(value);
+            }
+        }
+        self.report(ErrorKind::PlanSchema, node, path, format!("expected a whole number; found {}", node.describe()));
+        None
+    }
+
+    fn list<'n>(&mut self, node: &'n Node, path: &str) -> Option<&'n [Node]> {
+        match &node.value {
+            NodeValue::Sequence(items) => Some(items),
+            _ => {
+                self.report(ErrorKind::PlanSchema, node, path, format!("expected a list; found {}", node.describe()));
+                None
+            }
+        }
+    }
+
+    /// A list of texts with no repeats; a single text is not accepted as a list
+    /// so that `covariates: AGE` is caught (it should be `[AGE]`).
+    fn text_list(&mut self, node: &Node, path: &str) -> Option<Vec<(String, Node)>> {
+        let items = self.list(node, path)?;
+        let mut values: Vec<(String, Node)> = Vec::new();
+        let mut complete = true;
+        for (index, item) in items.iter().enumerate() {
+            let item_path = format!("{path}[{index}]");
+            match self.text(item, &item_path) {
+                Some(text) => {
+                    if values.iter().any(|(existing, _)| existing == &text) {
+                        self.report(ErrorKind::PlanSchema, item, &item_path, format!("\"{text}\" is listed twice"));
+                        complete = false;
+                    } else {
+                        values.push((text, item.clone()));
+                    }
+                }
+                None => complete = false,
+            }
+        }
+        complete.then_some(values)
+    }
+
+    fn choice<T: Copy>(&mut self, node: &Node, path: &str, options: &[(&str, T)]) -> Option<T> {
+        let text = self.text(node, path)?;
+        if let Some((_, value)) = options.iter().find(|(name, _)| *name == text) {
+            return Some(*value);
+        }
+        let names: Vec<&str> = options.iter().map(|(name, _)| *name).collect();
+        let hint = did_you_mean(&text, names.iter().copied()).map(|known| format!("did you mean \"{known}\"?"));
+        self.report_with_hint(
+            ErrorKind::PlanSchema,
+            node,
+            path,
+            format!("\"{text}\" is not allowed here; expected one of: {}", names.join(", ")),
+            hint,
+        );
+        None
+    }
+
+    /// Resolve a name against a list of known names; a miss is a dangling reference.
+    fn reference(&mut self, node: &Node, path: &str, what: &str, known: &[&str]) -> Option<usize> {
+        let name = self.text(node, path)?;
+        if let Some(index) = known.iter().position(|candidate| *candidate == name) {
+            return Some(index);
+        }
+        let hint = did_you_mean(&name, known.iter().copied()).map(|candidate| format!("did you mean \"{candidate}\"?"));
+        let listing = if known.is_empty() { "none are declared".to_string() } else { format!("declared: {}", known.join(", ")) };
+        self.report_with_hint(ErrorKind::PlanReference, node, path, format!("no {what} named \"{name}\" ({listing})"), hint);
+        None
+    }
+}
+
+/// Plain scalars like `.inf`, `nan`, `0x10` or `1_000` parse in some readers but
+/// are not numbers a plan should contain; accept ordinary decimal notation only.
+fn looks_numeric(text: &str) -> bool {
+    let body = text.strip_prefix(['-', '+']).unwrap_or(text);
+    !body.is_empty()
+        && body.chars().next().is_some_and(|first| first.is_ascii_digit() || first == '.')
+        && body.chars().all(|character| character.is_ascii_digit() || matches!(character, '.' | 'e' | 'E' | '-' | '+'))
+}
+
+const TOP_KEYS: &[&str] = &["cairn-plan", "study", "data", "variables", "populations", "analyses"];
+
+fn read_plan(reader: &mut Reader<'_>, root: &Node) -> Option<Plan> {
+    // The version is checked first and alone: a plan of another schema
+    // version would otherwise drown its one real problem in unknown keys.
+    if let NodeValue::Mapping(pairs) = &root.value {
+        let version = pairs.iter().find(|(key, _)| key.as_scalar().map(|(text, _)| text) == Some("cairn-plan"));
+        match version {
+            None => {
+                reader.report(
+                    ErrorKind::PlanSchema,
+                    root,
+                    "",
+                    format!("missing \"cairn-plan: {SCHEMA_VERSION}\" at the top; is this a cairn plan?"),
+                );
+                return None;
+            }
+            Some((_, value)) => {
+                let version = reader.whole_number(value, "cairn-plan")?;
+                if version != SCHEMA_VERSION {
+                    let message = if version > SCHEMA_VERSION {
+                        format!("this plan uses schema version {version}, newer than this cairn reads ({SCHEMA_VERSION}); use a newer cairn")
+                    } else {
+                        format!("schema version {version} is not supported; this cairn reads version {SCHEMA_VERSION}")
+                    };
+                    reader.report(ErrorKind::PlanSchema, value, "cairn-plan", message);
+                    return None;
+                }
+            }
+        }
+    }
+    let fields = reader.mapping(root, "", TOP_KEYS, TOP_KEYS)?;
+    let study = fields.get("study").and_then(|node| read_study(reader, node, &fields.child("study")));
+    let variables = fields.get("variables").map(|node| read_variables(reader, node, "variables")).unwrap_or_default();
+    let data = fields.get("data").and_then(|node| read_data(reader, node, "data", &variables));
+    let populations = fields
+        .get("populations")
+        .map(|node| read_populations(reader, node, "populations", &variables))
+        .unwrap_or_default();
+    let analyses = match (&study, &data, fields.get("analyses")) {
+        (Some(study), Some(data), Some(node)) => read_analyses(reader, node, "analyses", study, data, &variables, &populations),
+        _ => Vec::new(),
+    };
+    Some(Plan { study: study?, data: data?, variables, populations, analyses })
+}
+
+fn read_study(reader: &mut Reader<'_>, node: &Node, path: &str) -> Option<Study> {
+    let fields = reader.mapping(node, path, &["id", "title", "alpha", "sides"], &["id", "title", "alpha", "sides"])?;
+    let id = fields.get("id").and_then(|value| reader.text(value, &fields.child("id")));
+    let title = fields.get("title").and_then(|value| reader.text(value, &fields.child("title")));
+    let alpha = fields.get("alpha").and_then(|value| {
+        let alpha = reader.number(value, &fields.child("alpha"))?;
+        if alpha > 0.0 && alpha < 0.5 {
+            Some(alpha)
+        } else {
+            reader.report(ErrorKind::PlanSchema, value, &fields.child("alpha"), format!("alpha must lie between 0 and 0.5; found {alpha}"));
+            None
+        }
+    });
+    let sides = fields.get("sides").and_then(|value| {
+        let count = reader.whole_number(value, &fields.child("sides"))?;
+        match count {
+            1 => Some(Sides::One),
+            2 => Some(Sides::Two),
+            _ => {
+                reader.report(ErrorKind::PlanSchema, value, &fields.child("sides"), format!("sides must be 1 or 2; found {count}"));
+                None
+            }
+        }
+    });
+    Some(Study { id: id?, title: title?, alpha: alpha?, sides: sides? })
+}
+
+fn read_variables(reader: &mut Reader<'_>, node: &Node, path: &str) -> Vec<Variable> {
+    let mut variables = Vec::new();
+    for (name, key_node, definition) in reader.named_entries(node, path) {
+        let entry_path = join_path(path, name);
+        if reader.identifier(key_node, &entry_path).is_none() {
+            continue;
+        }
+        let Some(fields) = reader.mapping(definition, &entry_path, &["kind", "levels", "label"], &["kind"]) else { continue };
+        let label = fields.get("label").and_then(|value| reader.text(value, &fields.child("label")));
+        let levels = fields.get("levels").and_then(|value| {
+            let levels = reader.text_list(value, &fields.child("levels"))?;
+            if levels.is_empty() {
+                reader.report(ErrorKind::PlanSchema, value, &fields.child("levels"), "a list of levels must not be empty".to_string());
+                return None;
+            }
+            Some(levels.into_iter().map(|(text, _)| text).collect::<Vec<_>>())
+        });
+        #[derive(Clone, Copy)]
+        enum Kind {
+            Numeric,
+            Count,
+            Factor,
+            Ordinal,
+        }
+        let kind_node = fields.get("kind");
+        let kind = kind_node.and_then(|value| {
+            reader.choice(
+                value,
+                &fields.child("kind"),
+                &[("numeric", Kind::Numeric), ("count", Kind::Count), ("factor", Kind::Factor), ("ordinal", Kind::Ordinal)],
+            )
+        });
+        let kind = match (kind, levels, fields.get("levels")) {
+            (Some(Kind::Numeric), _, Some(levels_node)) | (Some(Kind::Count), _, Some(levels_node)) => {
+                reader.report(ErrorKind::PlanSchema, levels_node, &fields.child("levels"), "levels belong to factor and ordinal variables only".to_string());
+                None
+            }
+            (Some(Kind::Numeric), _, None) => Some(VariableKind::Numeric),
+            (Some(Kind::Count), _, None) => Some(VariableKind::Count),
+            (Some(Kind::Factor), levels, _) => Some(VariableKind::Factor { levels }),
+            (Some(Kind::Ordinal), Some(levels), _) => Some(VariableKind::Ordinal { levels }),
+            (Some(Kind::Ordinal), None, None) => {
+                reader.report(ErrorKind::PlanSchema, fields.node, &entry_path, "an ordinal variable needs its levels, lowest first".to_string());
+                None
+            }
+            _ => None,
+        };
+        if let Some(kind) = kind {
+            variables.push(Variable { name: name.to_string(), kind, label });
+        }
+    }
+    variables
+}
+
+fn read_data(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &[Variable]) -> Option<DataSpec> {
+    let fields = reader.mapping(
+        node,
+        path,
+        &["subjects", "key", "treatment", "missing", "unmatched-subjects"],
+        &["subjects", "key", "treatment"],
+    )?;
+    let subjects = fields.get("subjects").and_then(|value| reader.text(value, &fields.child("subjects")));
+    let key = fields.get("key").and_then(|value| reader.text(value, &fields.child("key")));
+    if let (Some(key), Some(key_node)) = (&key, fields.get("key")) {
+        if variables.iter().any(|variable| &variable.name == key) {
+            reader.report(
+                ErrorKind::PlanSchema,
+                key_node,
+                &fields.child("key"),
+                format!("the subject key \"{key}\" must not also be declared under variables"),
+            );
+        }
+    }
+    let treatment = fields.get("treatment").and_then(|value| read_treatment(reader, value, &fields.child("treatment"), variables));
+    let missing_codes = match fields.get("missing") {
+        Some(value) => reader.text_list_allowing_empty(value, &fields.child("missing")).unwrap_or_default(),
+        None => vec![String::new()],
+    };
+    let unmatched = match fields.get("unmatched-subjects") {
+        Some(value) => reader.choice(value, &fields.child("unmatched-subjects"), &[("error", UnmatchedRule::Error), ("exclude", UnmatchedRule::Exclude)]),
+        None => Some(UnmatchedRule::Error),
+    };
+    Some(DataSpec { subjects: subjects?, key: key?, treatment: treatment?, missing_codes, unmatched: unmatched? })
+}
+
+impl Reader<'_> {
+    /// Missing-value codes may include the empty string, so they get their own reader.
+    fn text_list_allowing_empty(&mut self, node: &Node, path: &str) -> Option<Vec<String>> {
+        let items = self.list(node, path)?;
+        let mut codes = Vec::new();
+        for (index, item) in items.iter().enumerate() {
+            match item.as_scalar() {
+                Some((text, quoted)) if quoted || !item.is_null() => codes.push(text.to_string()),
+                Some(_) => codes.push(String::new()),
+                None => self.report(ErrorKind::PlanSchema, item, &format!("{path}[{index}]"), format!("expected text; found {}", item.describe())),
+            }
+        }
+        Some(codes)
+    }
+}
+
+fn read_treatment(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &[Variable]) -> Option<TreatmentSpec> {
+    let fields = reader.mapping(
+        node,
+        path,
+        &["file", "column", "levels", "reference", "labels"],
+        &["file", "column", "levels", "reference"],
+    )?;
+    let file = fields.get("file").and_then(|value| reader.text(value, &fields.child("file")));
+    let column = fields.get("column").and_then(|value| reader.text(value, &fields.child("column")));
+    if let (Some(column), Some(column_node)) = (&column, fields.get("column")) {
+        if variables.iter().any(|variable| &variable.name == column) {
+            reader.report(
+                ErrorKind::PlanSchema,
+                column_node,
+                &fields.child("column"),
+                format!("the treatment column \"{column}\" must not also be declared under variables"),
+            );
+        }
+    }
+    let levels = fields.get("levels").and_then(|value| {
+        let levels = reader.text_list(value, &fields.child("levels"))?;
+        if levels.len() < 2 {
+            reader.report(ErrorKind::PlanSchema, value, &fields.child("levels"), format!("a trial needs at least two arms; found {}", levels.len()));
+            return None;
+        }
+        Some(levels)
+    });
+    let level_names: Vec<String> = levels.iter().flatten().map(|(text, _)| text.clone()).collect();
+    let known: Vec<&str> = level_names.iter().map(String::as_str).collect();
+    let reference = match (fields.get("reference"), levels.is_some()) {
+        (Some(value), true) => reader.reference(value, &fields.child("reference"), "treatment arm", &known),
+        _ => None,
+    };
+    let mut labels: Vec<Option<String>> = vec![None; level_names.len()];
+    if let Some(labels_node) = fields.get("labels") {
+        for (code, key_node, label_node) in reader.named_entries(labels_node, &fields.child("labels")) {
+            let label_path = join_path(&fields.child("labels"), code);
+            if levels.is_some() {
+                if let Some(index) = reader.reference(key_node, &label_path, "treatment arm", &known) {
+                    labels[index] = reader.text(label_node, &label_path);
+                }
+            }
+        }
+    }
+    let arms = level_names
+        .iter()
+        .zip(labels)
+        .map(|(code, label)| Arm { code: code.clone(), label: label.unwrap_or_else(|| code.clone()) })
+        .collect();
+    levels?;
+    Some(TreatmentSpec { file: file?, column: column?, arms, reference: reference? })
+}
+
+fn read_populations(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &[Variable]) -> Vec<Population> {
+    let variable_names: Vec<&str> = variables.iter().map(|variable| variable.name.as_str()).collect();
+    let mut populations = Vec::new();
+    for (id, key_node, definition) in reader.named_entries(node, path) {
+        let entry_path = join_path(path, id);
+        if reader.identifier(key_node, &entry_path).is_none() {
+            continue;
+        }
+        let Some(fields) = reader.mapping(definition, &entry_path, &["flag", "equals", "in", "label"], &["flag"]) else { continue };
+        let label = fields.get("label").and_then(|value| reader.text(value, &fields.child("label")));
+        let column = fields.get("flag").and_then(|value| reader.reference(value, &fields.child("flag"), "declared variable", &variable_names));
+        if let (Some(column), Some(flag_node)) = (column, fields.get("flag")) {
+            if !matches!(variables[column].kind, VariableKind::Factor { .. }) {
+                reader.report(
+                    ErrorKind::PlanSchema,
+                    flag_node,
+                    &fields.child("flag"),
+                    format!("a population flag must be a factor variable; \"{}\" is {}", variables[column].name, variables[column].kind.name()),
+                );
+            }
+        }
+        let values = match (fields.get("equals"), fields.get("in")) {
+            (Some(equals), None) => reader.text(equals, &fields.child("equals")).map(|value| vec![value]),
+            (None, Some(set)) => reader.text_list(set, &fields.child("in")).map(|values| values.into_iter().map(|(text, _)| text).collect()),
+            (Some(_), Some(set)) => {
+                reader.report(ErrorKind::PlanSchema, set, &fields.child("in"), "give either \"equals\" or \"in\", not both".to_string());
+                None
+            }
+            (None, None) => {
+                reader.report(ErrorKind::PlanSchema, definition, &entry_path, "a population needs \"equals: VALUE\" or \"in: [VALUES]\"".to_string());
+                None
+            }
+        };
+        if let (Some(column), Some(values)) = (column, &values) {
+            if let VariableKind::Factor { levels: Some(levels) } = &variables[column].kind {
+                for value in values {
+                    if !levels.contains(value) {
+                        reader.report(
+                            ErrorKind::PlanReference,
+                            definition,
+                            &entry_path,
+                            format!("\"{value}\" is not a level of \"{}\" (levels: {})", variables[column].name, levels.join(", ")),
+                        );
+                    }
+                }
+            }
+        }
+        if let (Some(column), Some(values)) = (column, values) {
+            populations.push(Population { id: id.to_string(), label: label.unwrap_or_else(|| id.to_string()), column, values });
+        }
+    }
+    populations
+}
+
+const ANALYSIS_KEYS: &[&str] = &[
+    "id",
+    "title",
+    "role",
+    "endpoint",
+    "population",
+    "model",
+    "covariates",
+    "strata",
+    "pool-small-strata",
+    "contrasts",
+    "confidence",
+];
+
+fn read_analyses(
+    reader: &mut Reader<'_>,
+    node: &Node,
+    path: &str,
+    study: &Study,
+    data: &DataSpec,
+    variables: &[Variable],
+    populations: &[Population],
+) -> Vec<Analysis> {
+    let Some(items) = reader.list(node, path) else { return Vec::new() };
+    if items.is_empty() {
+        reader.report(ErrorKind::PlanSchema, node, path, "a plan needs at least one analysis".to_string());
+    }
+    let mut analyses: Vec<Analysis> = Vec::new();
+    for (index, item) in items.iter().enumerate() {
+        let item_path = format!("{path}[{index}]");
+        if let Some(analysis) = read_analysis(reader, item, &item_path, study, data, variables, populations) {
+            if analyses.iter().any(|existing| existing.id == analysis.id) {
+                reader.report(ErrorKind::PlanSchema, item, &format!("{item_path}.id"), format!("analysis id \"{}\" is used twice", analysis.id));
+            } else {
+                analyses.push(analysis);
+            }
+        }
+    }
+    analyses
+}
+
+fn read_analysis(
+    reader: &mut Reader<'_>,
+    node: &Node,
+    path: &str,
+    study: &Study,
+    data: &DataSpec,
+    variables: &[Variable],
+    populations: &[Population],
+) -> Option<Analysis> {
+    let fields = reader.mapping(node, path, ANALYSIS_KEYS, &["id", "endpoint", "population", "model", "contrasts"])?;
+    let variable_names: Vec<&str> = variables.iter().map(|variable| variable.name.as_str()).collect();
+    let population_names: Vec<&str> = populations.iter().map(|population| population.id.as_str()).collect();
+    let id = fields.get("id").and_then(|value| reader.identifier(value, &fields.child("id")));
+    let title = fields.get("title").and_then(|value| reader.text(value, &fields.child("title")));
+    let role = match fields.get("role") {
+        Some(value) => reader.choice(
+            value,
+            &fields.child("role"),
+            &[
+                ("primary", Role::Primary),
+                ("key-secondary", Role::KeySecondary),
+                ("secondary", Role::Secondary),
+                ("sensitivity", Role::Sensitivity),
+                ("supplementary", Role::Supplementary),
+                ("exploratory", Role::Exploratory),
+            ],
+        ),
+        None => Some(Role::Secondary),
+    };
+    let endpoint = fields.get("endpoint").and_then(|value| read_endpoint(reader, value, &fields.child("endpoint"), variables));
+    let population = fields
+        .get("population")
+        .and_then(|value| reader.reference(value, &fields.child("population"), "population", &population_names));
+    let model = fields.get("model").and_then(|value| read_model(reader, value, &fields.child("model")));
+    if let (Some(endpoint), Some(model), Some(model_node)) = (&endpoint, &model, fields.get("model")) {
+        let fits = match model {
+            ModelSpec::Linear => endpoint.kind == EndpointKind::Continuous,
+        };
+        if !fits {
+            reader.report(ErrorKind::PlanSchema, model_node, &fields.child("model"), format!("this model does not fit a {} endpoint", endpoint.kind.name()));
+        }
+    }
+    let covariates = read_terms(reader, fields.get("covariates"), &fields.child("covariates"), variables, &variable_names, false);
+    let strata = read_terms(reader, fields.get("strata"), &fields.child("strata"), variables, &variable_names, true);
+    if let (Some(covariates), Some(strata)) = (&covariates, &strata) {
+        for stratum in strata {
+            if covariates.contains(stratum) {
+                if let Some(strata_node) = fields.get("strata") {
+                    reader.report(
+                        ErrorKind::PlanSchema,
+                        strata_node,
+                        &fields.child("strata"),
+                        format!("\"{}\" is listed both as a covariate and as a stratum", variables[*stratum].name),
+                    );
+                }
+            }
+        }
+    }
+    if let (Some(endpoint), Some(covariates), Some(strata)) = (&endpoint, &covariates, &strata) {
+        if covariates.contains(&endpoint.variable) || strata.contains(&endpoint.variable) {
+            reader.report(ErrorKind::PlanSchema, node, path, "the endpoint cannot also be a covariate or stratum".to_string());
+        }
+    }
+    let pool_small_strata = match fields.get("pool-small-strata") {
+        None => Some(None),
+        Some(value) => read_pooling(reader, value, &fields.child("pool-small-strata"), strata.as_deref().unwrap_or(&[]), variables).map(Some),
+    };
+    let contrasts = fields.get("contrasts").and_then(|value| read_contrasts(reader, value, &fields.child("contrasts"), &data.treatment));
+    let default_confidence = match study.sides {
+        Sides::Two => 1.0 - study.alpha,
+        Sides::One => 1.0 - 2.0 * study.alpha,
+    };
+    let confidence_level = match fields.get("confidence") {
+        None => Some(default_confidence),
+        Some(value) => {
+            let level = reader.number(value, &fields.child("confidence"));
+            match level {
+                Some(level) if level > 0.5 && level < 1.0 => Some(level),
+                Some(level) => {
+                    reader.report(ErrorKind::PlanSchema, value, &fields.child("confidence"), format!("a confidence level lies between 0.5 and 1; found {level}"));
+                    None
+                }
+                None => None,
+            }
+        }
+    };
+    let id = id?;
+    Some(Analysis {
+        title: title.unwrap_or_else(|| id.clone()),
+        id,
+        role: role?,
+        endpoint: endpoint?,
+        population: population?,
+        model: model?,
+        covariates: covariates?,
+        strata: strata?,
+        pool_small_strata: pool_small_strata?,
+        contrasts: contrasts?,
+        confidence_level: confidence_level?,
+    })
+}
+
+fn read_endpoint(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &[Variable]) -> Option<Endpoint> {
+    let fields = reader.mapping(node, path, &["column", "kind", "higher-is"], &["column", "kind", "higher-is"])?;
+    let names: Vec<&str> = variables.iter().map(|variable| variable.name.as_str()).collect();
+    let variable = fields.get("column").and_then(|value| reader.reference(value, &fields.child("column"), "declared variable", &names));
+    let kind = fields.get("kind").and_then(|value| reader.choice(value, &fields.child("kind"), &[("continuous", EndpointKind::Continuous)]));
+    let higher_is = fields
+        .get("higher-is")
+        .and_then(|value| reader.choice(value, &fields.child("higher-is"), &[("better", Direction::Better), ("worse", Direction::Worse)]));
+    if let (Some(variable), Some(kind), Some(kind_node)) = (variable, kind, fields.get("kind")) {
+        let declared = &variables[variable].kind;
+        let fits = match kind {
+            EndpointKind::Continuous => matches!(declared, VariableKind::Numeric | VariableKind::Count),
+        };
+        if !fits {
+            reader.report(
+                ErrorKind::PlanSchema,
+                kind_node,
+                &fields.child("kind"),
+                format!("a {} endpoint needs a numeric variable; \"{}\" is declared {}", kind.name(), variables[variable].name, declared.name()),
+            );
+            return None;
+        }
+    }
+    Some(Endpoint { variable: variable?, kind: kind?, higher_is: higher_is? })
+}
+
+fn read_model(reader: &mut Reader<'_>, node: &Node, path: &str) -> Option<ModelSpec> {
+    let fields = reader.mapping(node, path, &["family"], &["family"])?;
+    fields.get("family").and_then(|value| reader.choice(value, &fields.child("family"), &[("linear", ModelSpec::Linear)]))
+}
+
+fn read_terms(
+    reader: &mut Reader<'_>,
+    node: Option<&Node>,
+    path: &str,
+    variables: &[Variable],
+    names: &[&str],
+    factors_only: bool,
+) -> Option<Vec<usize>> {
+    let Some(node) = node else { return Some(Vec::new()) };
+    let listed = reader.text_list(node, path)?;
+    let mut indices = Vec::new();
+    let mut complete = true;
+    for (position, (_, item)) in listed.iter().enumerate() {
+        let item_path = format!("{path}[{position}]");
+        match reader.reference(item, &item_path, "declared variable", names) {
+            Some(index) => {
+                let kind = &variables[index].kind;
+                if factors_only && !matches!(kind, VariableKind::Factor { .. }) {
+                    reader.report(
+                        ErrorKind::PlanSchema,
+                        item,
+                        &item_path,
+                        format!("a stratum must be a factor variable; \"{}\" is {}", variables[index].name, kind.name()),
+                    );
+                    complete = false;
+                } else if matches!(kind, VariableKind::Ordinal { .. }) {
+                    reader.report(
+                        ErrorKind::PlanSchema,
+                        item,
+                        &item_path,
+                        format!("\"{}\" is ordinal; declare it numeric to use it as a slope or factor to use it as categories", variables[index].name),
+                    );
+                    complete = false;
+                } else {
+                    indices.push(index);
+                }
+            }
+            None => complete = false,
+        }
+    }
+    complete.then_some(indices)
+}
+
+fn read_pooling(reader: &mut Reader<'_>, node: &Node, path: &str, strata: &[usize], variables: &[Variable]) -> Option<PoolingRule> {
+    let fields = reader.mapping(node, path, &["below", "into"], &["below", "into"])?;
+    if strata.is_empty() {
+        reader.report(ErrorKind::PlanSchema, node, path, "a pooling rule needs strata to pool; add \"strata\"".to_string());
+    }
+    let below = fields.get("below").and_then(|value| {
+        let below = reader.whole_number(value, &fields.child("below"))?;
+        if below < 2 {
+            reader.report(ErrorKind::PlanSchema, value, &fields.child("below"), format!("\"below\" must be at least 2; found {below}"));
+            return None;
+        }
+        usize::try_from(below).ok()
+    });
+    let into = fields.get("into").and_then(|value| reader.text(value, &fields.child("into")));
+    if let (Some(into), Some(into_node)) = (&into, fields.get("into")) {
+        for stratum in strata {
+            if let VariableKind::Factor { levels: Some(levels) } = &variables[*stratum].kind {
+                if levels.contains(into) {
+                    reader.report(
+                        ErrorKind::PlanSchema,
+                        into_node,
+                        &fields.child("into"),
+                        format!("the pooled level \"{into}\" is already a level of \"{}\"; choose another name", variables[*stratum].name),
+                    );
+                }
+            }
+        }
+    }
+    Some(PoolingRule { below: below?, into: into? })
+}
+
+fn read_contrasts(reader: &mut Reader<'_>, node: &Node, path: &str, treatment: &TreatmentSpec) -> Option<Vec<Contrast>> {
+    let codes: Vec<&str> = treatment.arms.iter().map(|arm| arm.code.as_str()).collect();
+    let default_id = |arm: usize, versus: usize| format!("{}-vs-{}", codes[arm], codes[versus]);
+    if let Some((text, _)) = node.as_scalar() {
+        let rule = reader.choice(node, path, &[("each-vs-reference", 0), ("all-pairs", 1)])?;
+        let _ = text;
+        let mut contrasts = Vec::new();
+        if rule == 0 {
+            for arm in 0..codes.len() {
+                if arm != treatment.reference {
+                    contrasts.push(Contrast { id: default_id(arm, treatment.reference), arm, versus: treatment.reference });
+                }
+            }
+        } else {
+            for versus in 0..codes.len() {
+                for arm in versus + 1..codes.len() {
+                    contrasts.push(Contrast { id: default_id(arm, versus), arm, versus });
+                }
+            }
+        }
+        return Some(contrasts);
+    }
+    let items = reader.list(node, path)?;
+    if items.is_empty() {
+        reader.report(ErrorKind::PlanSchema, node, path, "list at least one contrast".to_string());
+        return None;
+    }
+    let mut contrasts: Vec<Contrast> = Vec::new();
+    let mut complete = true;
+    for (index, item) in items.iter().enumerate() {
+        let item_path = format!("{path}[{index}]");
+        let Some(fields) = reader.mapping(item, &item_path, &["id", "arm", "versus"], &["arm", "versus"]) else {
+            complete = false;
+            continue;
+        };
+        let arm = fields.get("arm").and_then(|value| reader.reference(value, &fields.child("arm"), "treatment arm", &codes));
+        let versus = fields.get("versus").and_then(|value| reader.reference(value, &fields.child("versus"), "treatment arm", &codes));
+        let id = fields.get("id").and_then(|value| reader.identifier(value, &fields.child("id")));
+        match (arm, versus) {
+            (Some(arm), Some(versus)) if arm == versus => {
+                reader.report(ErrorKind::PlanSchema, item, &item_path, format!("a contrast compares two different arms; both are \"{}\"", codes[arm]));
+                complete = false;
+            }
+            (Some(arm), Some(versus)) => {
+                let id = id.unwrap_or_else(|| default_id(arm, versus));
+                if contrasts.iter().any(|existing| existing.id == id) {
+                    reader.report(ErrorKind::PlanSchema, item, &item_path, format!("contrast id \"{id}\" is used twice"));
+                    complete = false;
+                } else {
+                    contrasts.push(Contrast { id, arm, versus });
+                }
+            }
+            _ => complete = false,
+        }
+    }
+    complete.then_some(contrasts)
+}

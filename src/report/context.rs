@@ -1,0 +1,374 @@
+//! From the results document to the strings the templates lay out.
+//!
+//! Every string that comes from the plan or the data passes through
+//! `markdown_text` here, once; templates print context values verbatim.
+
+use super::format::*;
+use super::CAUTION;
+use crate::results::*;
+use serde::Serialize;
+
+#[derive(Serialize)]
+pub struct Context {
+    study_id: String,
+    study_title: String,
+    tool_version: &'static str,
+    caution: &'static str,
+    plan_file: String,
+    plan_sha256: String,
+    lock_sentence: String,
+    alpha_sentence: String,
+    inputs: Vec<InputRow>,
+    deviations: Vec<DeviationRow>,
+    arm_labels: Vec<String>,
+    flow: Vec<FlowRow>,
+    flow_notes: Vec<String>,
+    analyses: Vec<AnalysisView>,
+}
+
+#[derive(Serialize)]
+struct InputRow {
+    role: &'static str,
+    file: String,
+    sha256: String,
+    bytes: u64,
+}
+
+#[derive(Serialize)]
+struct DeviationRow {
+    code: &'static str,
+    severity: &'static str,
+    scope: String,
+    message: String,
+}
+
+#[derive(Serialize)]
+struct FlowRow {
+    label: String,
+    cells: Vec<String>,
+    total: String,
+}
+
+#[derive(Serialize)]
+struct AnalysisView {
+    number: usize,
+    id: String,
+    title: String,
+    role: &'static str,
+    methods: String,
+    flow: Vec<FlowRow>,
+    pooling: Vec<String>,
+    failure: Option<String>,
+    confidence: String,
+    effects: Vec<EffectRow>,
+    effect_sentences: Vec<String>,
+    overall: Option<String>,
+    means: Vec<MeanRow>,
+    coefficients: Vec<CoefficientRow>,
+    fit_line: Option<String>,
+    aliased: Vec<String>,
+}
+
+#[derive(Serialize)]
+struct EffectRow {
+    label: String,
+    estimate: String,
+    standard_error: String,
+    interval: String,
+    p_value: String,
+}
+
+#[derive(Serialize)]
+struct MeanRow {
+    arm: String,
+    n: usize,
+    estimate: String,
+    standard_error: String,
+    interval: String,
+}
+
+#[derive(Serialize)]
+struct CoefficientRow {
+    name: String,
+    estimate: String,
+    standard_error: String,
+    statistic: String,
+    p_value: String,
+    interval: String,
+}
+
+pub fn build(results: &Results) -> Context {
+    let arm_label = |code: &str| {
+        results.study.arms.iter().find(|arm| arm.code == code).map(|arm| arm.label.clone()).unwrap_or_else(|| code.to_string())
+    };
+    let arm_labels: Vec<String> = results.study.arms.iter().map(|arm| markdown_text(&arm.label)).collect();
+    let lock_sentence = match (&results.plan.last_lock, results.plan.lock_status) {
+        (Some(lock), "locked") => format!(
+            "Locked: record {} of {}, sealed {} by {} (reason: {}), with cairn {}.",
+            lock.sequence,
+            results.plan.lock_records,
+            markdown_text(&lock.locked_at),
+            markdown_text(&lock.locked_by),
+            markdown_text(&lock.reason),
+            markdown_text(&lock.tool_version)
+        ),
+        (Some(lock), _) => format!(
+            "**Changed since lock**: the plan's bytes differ from lock record {} (sealed {} by {}).",
+            lock.sequence,
+            markdown_text(&lock.locked_at),
+            markdown_text(&lock.locked_by)
+        ),
+        (None, _) => "**Not locked**: no lock record exists for this plan.".to_string(),
+    };
+    let sides = if results.study.sides == 1 { "one-sided" } else { "two-sided" };
+    let alpha_sentence = format!("Familywise significance level {} ({sides}).", results.study.alpha);
+
+    let total = |cells: &[usize]| cells.iter().sum::<usize>().to_string();
+    let mut flow = vec![FlowRow {
+        label: "Randomised (in both files)".to_string(),
+        cells: results.subjects.randomised_per_arm.iter().map(usize::to_string).collect(),
+        total: total(&results.subjects.randomised_per_arm),
+    }];
+    for population in &results.subjects.populations {
+        flow.push(FlowRow {
+            label: markdown_text(&population.label),
+            cells: population.per_arm.iter().map(usize::to_string).collect(),
+            total: total(&population.per_arm),
+        });
+    }
+    let mut flow_notes = Vec::new();
+    if !results.subjects.only_in_subjects_file.is_empty() {
+        flow_notes.push(format!("{} subject(s) in the subjects file have no allocation and are not analysed.", results.subjects.only_in_subjects_file.len()));
+    }
+    if !results.subjects.only_in_allocation_file.is_empty() {
+        flow_notes.push(format!("{} allocated subject(s) have no row in the subjects file.", results.subjects.only_in_allocation_file.len()));
+    }
+
+    let analyses = results.analyses.iter().enumerate().map(|(index, analysis)| analysis_view(index + 1, analysis, results, &arm_label)).collect();
+    Context {
+        study_id: markdown_text(&results.study.id),
+        study_title: markdown_text(&results.study.title),
+        tool_version: results.tool.version,
+        caution: CAUTION,
+        plan_file: markdown_text(&results.plan.file),
+        plan_sha256: results.plan.sha256.clone(),
+        lock_sentence,
+        alpha_sentence,
+        inputs: results
+            .inputs
+            .iter()
+            .map(|input| InputRow { role: input.role, file: markdown_text(&input.file), sha256: input.sha256.clone(), bytes: input.bytes })
+            .collect(),
+        deviations: results
+            .deviations
+            .iter()
+            .map(|deviation| DeviationRow {
+                code: deviation.code,
+                severity: deviation.severity,
+                scope: deviation.analysis.as_deref().map(markdown_text).unwrap_or_else(|| "whole run".to_string()),
+                message: markdown_text(&deviation.message),
+            })
+            .collect(),
+        arm_labels,
+        flow,
+        flow_notes,
+        analyses,
+    }
+}
+
+fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, arm_label: &dyn Fn(&str) -> String) -> AnalysisView {
+    let reference = arm_label(&results.study.reference_arm);
+    let population_label = results
+        .subjects
+        .populations
+        .iter()
+        .find(|population| population.id == analysis.population)
+        .map(|population| population.label.clone())
+        .unwrap_or_else(|| analysis.population.clone());
+    let n_analysed: usize = analysis.analysed_per_arm.iter().sum();
+    let decimals = analysis.fit.as_ref().map(|fit| decimals_for_scale(fit.residual_sd)).unwrap_or(3);
+    let confidence = percent(analysis.confidence_level);
+
+    let mut terms = vec![format!("treatment (reference: {})", markdown_text(&reference))];
+    terms.extend(analysis.covariates.iter().map(|name| markdown_text(name)));
+    terms.extend(analysis.strata.iter().map(|name| format!("{} (stratum)", markdown_text(name))));
+    let df_text = analysis.fit.as_ref().map(|fit| format!(" on {} residual degrees of freedom", fit.residual_df)).unwrap_or_default();
+    let mut methods = format!(
+        "A linear model (analysis of covariance) was fitted by least squares to {} in the {} (n = {n_analysed}), with {} as fixed effects. ",
+        markdown_text(&analysis.endpoint.label),
+        markdown_text(&population_label),
+        join_words(&terms)
+    );
+    for pooling in &analysis.pooling {
+        methods.push_str(&format!(
+            "As planned, levels of {} with fewer than {} analysed subjects were pooled into one level, \"{}\". ",
+            markdown_text(&pooling.stratum),
+            pooling.below,
+            markdown_text(&pooling.into)
+        ));
+    }
+    methods.push_str(&format!(
+        "Treatment differences are contrasts of the model coefficients with {confidence} confidence intervals from the t distribution{df_text}; \
+         the overall effect of treatment is tested with an F test. Adjusted means are the model's predictions averaged over all analysed subjects as if each had received that arm. \
+         Subjects with a missing endpoint or covariate are left out of this analysis (complete cases)."
+    ));
+
+    let mut analysis_flow = vec![FlowRow {
+        label: format!("In {}", markdown_text(&population_label)),
+        cells: analysis.in_population_per_arm.iter().map(usize::to_string).collect(),
+        total: analysis.in_population_per_arm.iter().sum::<usize>().to_string(),
+    }];
+    for exclusion in &analysis.exclusions {
+        analysis_flow.push(FlowRow {
+            label: format!("Excluded: {} missing", markdown_text(&exclusion.missing)),
+            cells: exclusion.per_arm.iter().map(usize::to_string).collect(),
+            total: exclusion.per_arm.iter().sum::<usize>().to_string(),
+        });
+    }
+    analysis_flow.push(FlowRow {
+        label: "Analysed".to_string(),
+        cells: analysis.analysed_per_arm.iter().map(usize::to_string).collect(),
+        total: n_analysed.to_string(),
+    });
+    let pooling = analysis
+        .pooling
+        .iter()
+        .map(|pooling| {
+            let levels: Vec<String> = pooling.pooled_levels.iter().map(|level| format!("{} ({})", markdown_text(&level.level), level.subjects)).collect();
+            format!(
+                "{}: {} pooled into \"{}\" ({} subjects).",
+                markdown_text(&pooling.stratum),
+                levels.join(", "),
+                markdown_text(&pooling.into),
+                pooling.pooled_size
+            )
+        })
+        .collect();
+
+    let lower_is_better = analysis.endpoint.higher_is == "worse";
+    let mut effects = Vec::new();
+    let mut effect_sentences = Vec::new();
+    for contrast in &analysis.contrasts {
+        let label = format!("{} − {}", markdown_text(&arm_label(&contrast.arm)), markdown_text(&arm_label(&contrast.versus)));
+        match (&contrast.estimate, &contrast.failure) {
+            (Some(estimate), _) => {
+                effects.push(EffectRow {
+                    label: label.clone(),
+                    estimate: fixed(estimate.estimate, decimals),
+                    standard_error: fixed(estimate.standard_error, decimals),
+                    interval: interval(estimate.lower, estimate.upper, decimals),
+                    p_value: p_value(estimate.p_value),
+                });
+                let favoured = if (estimate.estimate < 0.0) == lower_is_better { arm_label(&contrast.arm) } else { arm_label(&contrast.versus) };
+                let direction = if lower_is_better { "lower values are better" } else { "higher values are better" };
+                let sentence = if estimate.estimate == 0.0 {
+                    format!("{label}: no difference in the point estimate.")
+                } else {
+                    format!("{label}: the point estimate favours {} ({direction}).", markdown_text(&favoured))
+                };
+                effect_sentences.push(sentence);
+            }
+            (None, failure) => effects.push(EffectRow {
+                label,
+                estimate: "not estimable".to_string(),
+                standard_error: String::new(),
+                interval: failure.as_deref().map(markdown_text).unwrap_or_default(),
+                p_value: String::new(),
+            }),
+        }
+    }
+    let overall = analysis.treatment_test.as_ref().map(|test| {
+        format!(
+            "{}({}, {}) = {}, p = {}",
+            test.statistic_name,
+            degrees(test.df1),
+            test.df2.map(degrees).unwrap_or_default(),
+            statistic(test.statistic),
+            p_value(test.p_value)
+        )
+        .replace("p = <", "p <")
+    });
+    let overall = overall.or_else(|| analysis.treatment_test_failure.as_ref().map(|reason| format!("not available: {}", markdown_text(reason))));
+    let means = analysis
+        .adjusted_means
+        .iter()
+        .enumerate()
+        .map(|(index, mean)| match &mean.estimate {
+            Some(estimate) => MeanRow {
+                arm: markdown_text(&arm_label(&mean.arm)),
+                n: analysis.analysed_per_arm[index],
+                estimate: fixed(estimate.estimate, decimals),
+                standard_error: fixed(estimate.standard_error, decimals),
+                interval: interval(estimate.lower, estimate.upper, decimals),
+            },
+            None => MeanRow {
+                arm: markdown_text(&arm_label(&mean.arm)),
+                n: analysis.analysed_per_arm[index],
+                estimate: "not estimable".to_string(),
+                standard_error: String::new(),
+                interval: mean.failure.as_deref().map(markdown_text).unwrap_or_default(),
+            },
+        })
+        .collect();
+    let coefficients = analysis
+        .coefficients
+        .iter()
+        .map(|row| match &row.estimate {
+            Some(estimate) => CoefficientRow {
+                name: markdown_text(&row.name),
+                estimate: fixed(estimate.estimate, decimals.max(3)),
+                standard_error: fixed(estimate.standard_error, decimals.max(3)),
+                statistic: statistic(estimate.statistic),
+                p_value: p_value(estimate.p_value),
+                interval: interval(estimate.lower, estimate.upper, decimals.max(3)),
+            },
+            None => CoefficientRow {
+                name: markdown_text(&row.name),
+                estimate: "aliased".to_string(),
+                standard_error: String::new(),
+                statistic: String::new(),
+                p_value: String::new(),
+                interval: String::new(),
+            },
+        })
+        .collect();
+    let fit_line = analysis.fit.as_ref().map(|fit| {
+        let r_squared = fit.r_squared.map(|value| fixed(value, 4)).unwrap_or_else(|| "not defined".to_string());
+        format!(
+            "n = {}, {} design columns of rank {}, residual SD {} on {} degrees of freedom, R² = {}, {} refinement step(s) of the least-squares solution.",
+            fit.n_analysed,
+            fit.n_columns,
+            fit.rank,
+            fixed(fit.residual_sd, decimals + 1),
+            fit.residual_df,
+            r_squared,
+            fit.refinement_steps
+        )
+    });
+    AnalysisView {
+        number,
+        id: markdown_text(&analysis.id),
+        title: markdown_text(&analysis.title),
+        role: analysis.role,
+        methods,
+        flow: analysis_flow,
+        pooling,
+        failure: analysis.failure.as_deref().map(markdown_text),
+        confidence,
+        effects,
+        effect_sentences,
+        overall,
+        means,
+        coefficients,
+        fit_line,
+        aliased: analysis.fit.as_ref().map(|fit| fit.aliased_columns.iter().map(|name| markdown_text(name)).collect()).unwrap_or_default(),
+    }
+}
+
+fn join_words(words: &[String]) -> String {
+    match words {
+        [] => String::new(),
+        [only] => only.clone(),
+        [init @ .., last] => format!("{} and {last}", init.join(", ")),
+    }
+}

@@ -1,0 +1,249 @@
+//! results.json: the full-precision record of a run (a serialisation boundary).
+//!
+//! The types here mirror the documented schema (README, "results.json") field
+//! by field, in a fixed order, with no maps whose order could vary. Numbers
+//! are written with the shortest representation that reads back to the same
+//! double, so the file is byte-identical across runs. The report is rendered
+//! from this document, so what a reader sees and what a reviewer compares are
+//! the same numbers.
+
+use serde::Serialize;
+
+pub const SCHEMA: &str = "cairn-results/1";
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Results {
+    pub schema: &'static str,
+    pub tool: Tool,
+    pub study: StudyInfo,
+    pub plan: PlanInfo,
+    pub inputs: Vec<Input>,
+    pub deviations: Vec<Deviation>,
+    pub subjects: SubjectFlow,
+    pub analyses: Vec<AnalysisResult>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Tool {
+    pub name: &'static str,
+    pub version: &'static str,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct StudyInfo {
+    pub id: String,
+    pub title: String,
+    pub alpha: f64,
+    pub sides: u32,
+    pub arms: Vec<ArmInfo>,
+    pub reference_arm: String,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct ArmInfo {
+    pub code: String,
+    pub label: String,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct PlanInfo {
+    pub file: String,
+    pub sha256: String,
+    /// "locked", "changed-since-lock" or "unlocked".
+    pub lock_status: &'static str,
+    pub lock_records: usize,
+    pub last_lock: Option<LockSummary>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct LockSummary {
+    pub sequence: u32,
+    pub locked_at: String,
+    pub locked_by: String,
+    pub reason: String,
+    pub plan_sha256: String,
+    pub tool_version: String,
+    pub record_sha256: String,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Input {
+    /// "plan", "lock record", "subjects", "allocation" or "template".
+    pub role: &'static str,
+    pub file: String,
+    pub sha256: String,
+    pub bytes: u64,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Deviation {
+    /// A stable code (README, "Deviation codes").
+    pub code: &'static str,
+    /// "critical", "major" or "minor".
+    pub severity: &'static str,
+    /// The analysis concerned, if any.
+    pub analysis: Option<String>,
+    pub message: String,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct SubjectFlow {
+    pub subjects_file_rows: usize,
+    pub allocation_file_rows: usize,
+    pub matched: usize,
+    pub only_in_subjects_file: Vec<String>,
+    pub only_in_allocation_file: Vec<String>,
+    /// Randomised (matched) subjects per arm, in arm order.
+    pub randomised_per_arm: Vec<usize>,
+    pub populations: Vec<PopulationCount>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct PopulationCount {
+    pub id: String,
+    pub label: String,
+    pub per_arm: Vec<usize>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct AnalysisResult {
+    pub id: String,
+    pub title: String,
+    pub role: &'static str,
+    pub population: String,
+    pub endpoint: EndpointInfo,
+    pub model: ModelInfo,
+    pub covariates: Vec<String>,
+    pub strata: Vec<String>,
+    pub confidence_level: f64,
+    pub in_population_per_arm: Vec<usize>,
+    pub analysed_per_arm: Vec<usize>,
+    pub exclusions: Vec<ExclusionInfo>,
+    pub pooling: Vec<PoolingInfo>,
+    /// "fitted" or "failed".
+    pub status: &'static str,
+    /// Why the analysis failed, in words, when it did.
+    pub failure: Option<String>,
+    pub fit: Option<FitSummary>,
+    pub coefficients: Vec<CoefficientInfo>,
+    pub treatment_test: Option<TestInfo>,
+    pub treatment_test_failure: Option<String>,
+    pub contrasts: Vec<ContrastInfo>,
+    pub adjusted_means: Vec<ArmMeanInfo>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct EndpointInfo {
+    pub column: String,
+    pub label: String,
+    pub kind: &'static str,
+    pub higher_is: &'static str,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct ModelInfo {
+    pub family: &'static str,
+    pub method: &'static str,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct ExclusionInfo {
+    pub missing: String,
+    pub per_arm: Vec<usize>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct PoolingInfo {
+    pub stratum: String,
+    pub below: usize,
+    pub into: String,
+    pub pooled_levels: Vec<PooledLevel>,
+    pub pooled_size: usize,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct PooledLevel {
+    pub level: String,
+    pub subjects: usize,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct FitSummary {
+    pub n_analysed: usize,
+    pub n_columns: usize,
+    pub rank: usize,
+    pub residual_df: usize,
+    pub residual_sd: f64,
+    pub r_squared: Option<f64>,
+    pub adjusted_r_squared: Option<f64>,
+    pub refinement_steps: usize,
+    /// Design columns dropped because they are linear combinations of earlier ones.
+    pub aliased_columns: Vec<String>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct CoefficientInfo {
+    pub name: String,
+    pub term: String,
+    pub aliased: bool,
+    pub estimate: Option<EstimateInfo>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct EstimateInfo {
+    pub estimate: f64,
+    pub standard_error: f64,
+    pub statistic: f64,
+    pub df: Option<f64>,
+    pub p_value: f64,
+    pub lower: f64,
+    pub upper: f64,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct TestInfo {
+    pub statistic_name: &'static str,
+    pub statistic: f64,
+    pub df1: f64,
+    pub df2: Option<f64>,
+    pub p_value: f64,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct ContrastInfo {
+    pub id: String,
+    pub arm: String,
+    pub versus: String,
+    /// "difference" for linear models.
+    pub scale: &'static str,
+    pub estimate: Option<EstimateInfo>,
+    pub failure: Option<String>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct ArmMeanInfo {
+    pub arm: String,
+    pub estimate: Option<EstimateInfo>,
+    pub failure: Option<String>,
+}
+
+impl From<&crate::inference::Estimate> for EstimateInfo {
+    fn from(estimate: &crate::inference::Estimate) -> EstimateInfo {
+        EstimateInfo {
+            estimate: estimate.value,
+            standard_error: estimate.standard_error,
+            statistic: estimate.statistic,
+            df: estimate.df,
+            p_value: estimate.p_value,
+            lower: estimate.lower,
+            upper: estimate.upper,
+        }
+    }
+}
+
+/// Serialise with two-space indentation and a final newline.
+pub fn to_json(results: &Results) -> Result<Vec<u8>, crate::error::Error> {
+    let mut bytes = serde_json::to_vec_pretty(results).map_err(|cause| crate::error::Error::internal(format!("cannot serialise results: {cause}")))?;
+    bytes.push(b'\n');
+    Ok(bytes)
+}

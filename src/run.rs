@@ -1,0 +1,382 @@
+//! The edge of the pipeline: `check`, `run`, and the lock command's inputs.
+//!
+//! This is the only stage that does I/O for a run: it reads the plan, the lock
+//! record and the data files, hashes them, hands typed values to the pure
+//! stages (design → models → inference), collects deviations, renders the
+//! outputs and writes them atomically. Nothing it writes depends on the clock,
+//! the working folder or the environment.
+
+use crate::data::{self, StudyData};
+use crate::design::{self, Design};
+use crate::error::Error;
+use crate::inference::linear::{infer, LinearInference};
+use crate::models::linear::{fit_least_squares, LeastSquaresFit, LeastSquaresOptions};
+use crate::output::Staged;
+use crate::plan::{self, Analysis, LoadedPlan, ModelSpec, Plan};
+use crate::provenance::lock::{self, LoadedLock};
+use crate::provenance::{sha256_hex, TOOL_VERSION};
+use crate::report;
+use crate::results::*;
+use std::path::Path;
+
+/// Everything read from disk for one run, with the raw bytes that were hashed.
+pub struct Inputs {
+    pub plan: LoadedPlan,
+    pub lock: Option<LoadedLock>,
+    pub subjects_bytes: Vec<u8>,
+    pub allocation_bytes: Vec<u8>,
+    pub data: StudyData,
+}
+
+/// What `check` found, for its one-line summary.
+pub struct CheckSummary {
+    pub analyses: usize,
+    pub variables: usize,
+    pub subjects: usize,
+    pub lock_status: &'static str,
+}
+
+/// Read and validate the plan and every file it names.
+pub fn load_inputs(plan_path: &Path) -> Result<Inputs, Error> {
+    let plan = plan::load(plan_path)?;
+    let lock = lock::read(plan_path)?;
+    let subjects_path = plan.resolve(&plan.plan.data.subjects)?;
+    let allocation_path = plan.resolve(&plan.plan.data.treatment.file)?;
+    let subjects_bytes = data::read_file(&subjects_path, &plan.plan.data.subjects)?;
+    let allocation_bytes = data::read_file(&allocation_path, &plan.plan.data.treatment.file)?;
+    let subjects = data::read_table(&subjects_bytes, &plan.plan.data.subjects)?;
+    let allocation = data::read_table(&allocation_bytes, &plan.plan.data.treatment.file)?;
+    let study_data = data::assemble(&plan.plan, &subjects, &allocation)?;
+    Ok(Inputs { plan, lock, subjects_bytes, allocation_bytes, data: study_data })
+}
+
+/// `cairn check`: validate the plan and the data it names, and build every
+/// analysis's design (so empty arms and missing columns surface before a run).
+pub fn check(plan_path: &Path) -> Result<CheckSummary, Error> {
+    let inputs = load_inputs(plan_path)?;
+    for analysis in &inputs.plan.plan.analyses {
+        design::build(&inputs.plan.plan, analysis, &inputs.data)?;
+    }
+    Ok(CheckSummary {
+        analyses: inputs.plan.plan.analyses.len(),
+        variables: inputs.plan.plan.variables.len(),
+        subjects: inputs.data.subject_ids.len(),
+        lock_status: lock_status(&inputs).0,
+    })
+}
+
+/// `cairn run`: fit every planned analysis and write the outputs into `out`.
+pub fn run(plan_path: &Path, out: &Path, force: bool) -> Result<Vec<String>, Error> {
+    if out.exists() && !force {
+        // Refuse before any work so that a long run does not end in this error.
+        Staged::new().commit(out, false)?;
+    }
+    let inputs = load_inputs(plan_path)?;
+    let staged = produce(&inputs)?;
+    staged.commit(out, force)?;
+    Ok(staged.files().iter().map(|(name, _)| name.clone()).collect())
+}
+
+/// Compute every output of a run in memory.
+pub fn produce(inputs: &Inputs) -> Result<Staged, Error> {
+    let plan = &inputs.plan.plan;
+    let mut deviations = Vec::new();
+    let (status, last) = lock_status(inputs);
+    match status {
+        "unlocked" => deviations.push(Deviation {
+            code: "LOCK-ABSENT",
+            severity: "major",
+            analysis: None,
+            message: format!("the plan has no lock record: nothing shows it was fixed before unblinding (run \"cairn lock {}\")", inputs.plan.file_name),
+        }),
+        "changed-since-lock" => deviations.push(Deviation {
+            code: "LOCK-MISMATCH",
+            severity: "critical",
+            analysis: None,
+            message: format!(
+                "the plan's bytes differ from lock record {}: its SHA-256 is {}, the record seals {}",
+                last.as_ref().map(|record| record.sequence).unwrap_or(0),
+                sha256_hex(&inputs.plan.bytes),
+                last.as_ref().map(|record| record.plan_sha256.as_str()).unwrap_or("")
+            ),
+        }),
+        _ => {}
+    }
+    if let Some(record) = &last {
+        if record.tool_version != TOOL_VERSION {
+            deviations.push(Deviation {
+                code: "LOCK-TOOL-VERSION",
+                severity: "minor",
+                analysis: None,
+                message: format!("the plan was locked with cairn {} and is run with cairn {}", record.tool_version, TOOL_VERSION),
+            });
+        }
+    }
+    if !inputs.data.join.only_in_subjects.is_empty() || !inputs.data.join.only_in_allocation.is_empty() {
+        deviations.push(Deviation {
+            code: "SUBJECTS-UNMATCHED",
+            severity: "major",
+            analysis: None,
+            message: format!(
+                "{} subject(s) in the subjects file have no allocation and {} allocated subject(s) have no data; as the plan says, they are left out",
+                inputs.data.join.only_in_subjects.len(),
+                inputs.data.join.only_in_allocation.len()
+            ),
+        });
+    }
+
+    let mut analyses = Vec::new();
+    for analysis in &plan.analyses {
+        let design = design::build(plan, analysis, &inputs.data)?;
+        let result = fit_analysis(plan, analysis, &design, &mut deviations);
+        analyses.push(result);
+    }
+
+    let results = Results {
+        schema: SCHEMA,
+        tool: Tool { name: "cairn", version: TOOL_VERSION },
+        study: StudyInfo {
+            id: plan.study.id.clone(),
+            title: plan.study.title.clone(),
+            alpha: plan.study.alpha,
+            sides: plan.study.sides.count(),
+            arms: plan.data.treatment.arms.iter().map(|arm| ArmInfo { code: arm.code.clone(), label: arm.label.clone() }).collect(),
+            reference_arm: plan.data.treatment.arms[plan.data.treatment.reference].code.clone(),
+        },
+        plan: PlanInfo {
+            file: inputs.plan.file_name.clone(),
+            sha256: sha256_hex(&inputs.plan.bytes),
+            lock_status: status,
+            lock_records: inputs.lock.as_ref().map(|loaded| loaded.lock.records.len()).unwrap_or(0),
+            last_lock: last,
+        },
+        inputs: input_list(inputs),
+        deviations,
+        subjects: subject_flow(plan, &inputs.data),
+        analyses,
+    };
+    let results_json = to_json(&results)?;
+    let rendered = report::render(&results)?;
+    let mut staged = Staged::new();
+    staged.add("report.md", rendered.markdown.into_bytes());
+    staged.add("report.html", rendered.html.into_bytes());
+    staged.add("results.json", results_json);
+    for (name, bytes) in report::tables::all(&results) {
+        staged.add(format!("tables/{name}"), bytes);
+    }
+    let manifest = manifest(&staged)?;
+    staged.add("manifest.json", manifest);
+    Ok(staged)
+}
+
+fn lock_status(inputs: &Inputs) -> (&'static str, Option<LockSummary>) {
+    let Some(loaded) = &inputs.lock else { return ("unlocked", None) };
+    let Some(record) = loaded.lock.records.last() else { return ("unlocked", None) };
+    let summary = LockSummary {
+        sequence: record.sequence,
+        locked_at: record.locked_at.clone(),
+        locked_by: record.locked_by.clone(),
+        reason: record.reason.clone(),
+        plan_sha256: record.plan_sha256.clone(),
+        tool_version: record.tool_version.clone(),
+        record_sha256: record.record_sha256.clone(),
+    };
+    let status = if record.plan_sha256 == sha256_hex(&inputs.plan.bytes) { "locked" } else { "changed-since-lock" };
+    (status, Some(summary))
+}
+
+fn input_list(inputs: &Inputs) -> Vec<Input> {
+    let plan = &inputs.plan.plan;
+    let mut list = vec![Input {
+        role: "plan",
+        file: inputs.plan.file_name.clone(),
+        sha256: sha256_hex(&inputs.plan.bytes),
+        bytes: inputs.plan.bytes.len() as u64,
+    }];
+    if let Some(loaded) = &inputs.lock {
+        list.push(Input { role: "lock record", file: loaded.file_name.clone(), sha256: sha256_hex(&loaded.bytes), bytes: loaded.bytes.len() as u64 });
+    }
+    list.push(Input {
+        role: "subjects",
+        file: plan.data.subjects.clone(),
+        sha256: sha256_hex(&inputs.subjects_bytes),
+        bytes: inputs.subjects_bytes.len() as u64,
+    });
+    list.push(Input {
+        role: "allocation",
+        file: plan.data.treatment.file.clone(),
+        sha256: sha256_hex(&inputs.allocation_bytes),
+        bytes: inputs.allocation_bytes.len() as u64,
+    });
+    for (name, text) in report::TEMPLATES {
+        list.push(Input { role: "template", file: format!("templates/{name}"), sha256: sha256_hex(text.as_bytes()), bytes: text.len() as u64 });
+    }
+    list
+}
+
+fn subject_flow(plan: &Plan, data: &StudyData) -> SubjectFlow {
+    let arms = plan.data.treatment.arms.len();
+    let mut randomised = vec![0; arms];
+    for &arm in &data.arms {
+        randomised[arm] += 1;
+    }
+    let populations = plan
+        .populations
+        .iter()
+        .map(|population| {
+            let mut per_arm = vec![0; arms];
+            if let data::Column::Categorical { levels, codes } = &data.columns[population.column] {
+                for (row, code) in codes.iter().enumerate() {
+                    if code.is_some_and(|code| population.values.contains(&levels[code])) {
+                        per_arm[data.arms[row]] += 1;
+                    }
+                }
+            }
+            PopulationCount { id: population.id.clone(), label: population.label.clone(), per_arm }
+        })
+        .collect();
+    SubjectFlow {
+        subjects_file_rows: data.join.subjects_rows,
+        allocation_file_rows: data.join.allocation_rows,
+        matched: data.join.matched,
+        only_in_subjects_file: data.join.only_in_subjects.clone(),
+        only_in_allocation_file: data.join.only_in_allocation.clone(),
+        randomised_per_arm: randomised,
+        populations,
+    }
+}
+
+fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &mut Vec<Deviation>) -> AnalysisResult {
+    let arms = &plan.data.treatment.arms;
+    let variable_name = |index: usize| plan.variables[index].name.clone();
+    let endpoint_variable = &plan.variables[analysis.endpoint.variable];
+    let mut result = AnalysisResult {
+        id: analysis.id.clone(),
+        title: analysis.title.clone(),
+        role: analysis.role.name(),
+        population: plan.populations[analysis.population].id.clone(),
+        endpoint: EndpointInfo {
+            column: endpoint_variable.name.clone(),
+            label: endpoint_variable.display_name().to_string(),
+            kind: analysis.endpoint.kind.name(),
+            higher_is: match analysis.endpoint.higher_is {
+                plan::Direction::Better => "better",
+                plan::Direction::Worse => "worse",
+            },
+        },
+        model: match analysis.model {
+            ModelSpec::Linear => ModelInfo { family: "linear", method: "least squares (pivoted Householder QR with iterative refinement)" },
+        },
+        covariates: analysis.covariates.iter().map(|&index| variable_name(index)).collect(),
+        strata: analysis.strata.iter().map(|&index| variable_name(index)).collect(),
+        confidence_level: analysis.confidence_level,
+        in_population_per_arm: design.in_population.clone(),
+        analysed_per_arm: design.analysed_per_arm.clone(),
+        exclusions: design.exclusions.iter().map(|exclusion| ExclusionInfo { missing: exclusion.variable.clone(), per_arm: exclusion.per_arm.clone() }).collect(),
+        pooling: design
+            .pooling
+            .iter()
+            .map(|outcome| PoolingInfo {
+                stratum: outcome.variable.clone(),
+                below: outcome.threshold,
+                into: outcome.into.clone(),
+                pooled_levels: outcome.pooled_levels.iter().map(|(level, subjects)| PooledLevel { level: level.clone(), subjects: *subjects }).collect(),
+                pooled_size: outcome.pooled_size,
+            })
+            .collect(),
+        status: "failed",
+        failure: None,
+        fit: None,
+        coefficients: Vec::new(),
+        treatment_test: None,
+        treatment_test_failure: None,
+        contrasts: Vec::new(),
+        adjusted_means: Vec::new(),
+    };
+    let fitted = fit_least_squares(&design.matrix, &design.response, &LeastSquaresOptions::default())
+        .map_err(|error| error.to_string())
+        .and_then(|fit| infer(design, &fit, &analysis.contrasts, analysis.confidence_level).map(|inference| (fit, inference)));
+    match fitted {
+        Err(reason) => {
+            deviations.push(Deviation { code: "FIT-FAILED", severity: "critical", analysis: Some(analysis.id.clone()), message: format!("the model could not be fitted: {reason}") });
+            result.failure = Some(reason);
+        }
+        Ok((fit, inference)) => fill_linear(&mut result, design, &fit, &inference, arms, deviations),
+    }
+    result
+}
+
+fn fill_linear(result: &mut AnalysisResult, design: &Design, fit: &LeastSquaresFit, inference: &LinearInference, arms: &[plan::Arm], deviations: &mut Vec<Deviation>) {
+    let aliased: Vec<String> = fit.aliased_columns.iter().map(|&column| design.column_names[column].clone()).collect();
+    if !aliased.is_empty() {
+        deviations.push(Deviation {
+            code: "TERM-ALIASED",
+            severity: "major",
+            analysis: Some(result.id.clone()),
+            message: format!(
+                "{} design column(s) are linear combinations of earlier ones and were not estimated: {}",
+                aliased.len(),
+                aliased.join(", ")
+            ),
+        });
+    }
+    result.status = "fitted";
+    result.fit = Some(FitSummary {
+        n_analysed: fit.n_observations,
+        n_columns: fit.n_columns,
+        rank: fit.rank,
+        residual_df: inference.residual_df,
+        residual_sd: inference.residual_sd,
+        r_squared: inference.r_squared,
+        adjusted_r_squared: inference.adjusted_r_squared,
+        refinement_steps: fit.refinement_steps,
+        aliased_columns: aliased,
+    });
+    result.coefficients = inference
+        .coefficients
+        .iter()
+        .map(|row| CoefficientInfo { name: row.name.clone(), term: row.term.clone(), aliased: row.estimate.is_none(), estimate: row.estimate.as_ref().map(EstimateInfo::from) })
+        .collect();
+    match &inference.treatment_test {
+        Ok(test) => result.treatment_test = Some(TestInfo { statistic_name: test.statistic_name, statistic: test.statistic, df1: test.df1, df2: test.df2, p_value: test.p_value }),
+        Err(reason) => result.treatment_test_failure = Some(reason.clone()),
+    }
+    result.contrasts = inference
+        .contrasts
+        .iter()
+        .map(|contrast| ContrastInfo {
+            id: contrast.id.clone(),
+            arm: arms[contrast.arm].code.clone(),
+            versus: arms[contrast.versus].code.clone(),
+            scale: "difference",
+            estimate: contrast.estimate.as_ref().ok().map(EstimateInfo::from),
+            failure: contrast.estimate.as_ref().err().cloned(),
+        })
+        .collect();
+    result.adjusted_means = inference
+        .adjusted_means
+        .iter()
+        .map(|mean| ArmMeanInfo { arm: arms[mean.arm].code.clone(), estimate: mean.estimate.as_ref().ok().map(EstimateInfo::from), failure: mean.estimate.as_ref().err().cloned() })
+        .collect();
+}
+
+fn manifest(staged: &Staged) -> Result<Vec<u8>, Error> {
+    #[derive(serde::Serialize)]
+    struct Entry<'a> {
+        file: &'a str,
+        sha256: String,
+        bytes: usize,
+    }
+    #[derive(serde::Serialize)]
+    struct Manifest<'a> {
+        schema: &'static str,
+        tool_version: &'static str,
+        outputs: Vec<Entry<'a>>,
+    }
+    let mut outputs: Vec<Entry<'_>> = staged.files().iter().map(|(name, bytes)| Entry { file: name, sha256: sha256_hex(bytes), bytes: bytes.len() }).collect();
+    outputs.sort_by(|left, right| left.file.cmp(right.file));
+    let mut bytes = serde_json::to_vec_pretty(&Manifest { schema: "cairn-manifest/1", tool_version: TOOL_VERSION, outputs })
+        .map_err(|cause| Error::internal(format!("cannot serialise the manifest: {cause}")))?;
+    bytes.push(b'\n');
+    Ok(bytes)
+}
