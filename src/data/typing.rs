@@ -123,7 +123,10 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
     let subject_set: BTreeMap<&str, ()> = subject_rows.iter().map(|(id, _)| (id.as_str(), ())).collect();
     let only_in_allocation: Vec<String> =
         allocation_rows.iter().filter(|(id, _)| !subject_set.contains_key(id.as_str())).map(|(id, _)| id.clone()).collect();
-    if plan.data.unmatched == UnmatchedRule::Error && (!only_in_subjects.is_empty() || !only_in_allocation.is_empty()) {
+    // A subject whose arm was rejected above would also count as unmatched;
+    // saying so twice would bury the real problem.
+    let arms_rejected = !collector.problems.is_empty();
+    if plan.data.unmatched == UnmatchedRule::Error && !arms_rejected && (!only_in_subjects.is_empty() || !only_in_allocation.is_empty()) {
         let sample = |ids: &[String]| ids.iter().take(5).cloned().collect::<Vec<_>>().join(", ");
         let mut parts = Vec::new();
         if !only_in_subjects.is_empty() {

@@ -91,7 +91,9 @@ struct FactorValues {
 pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Design, Error> {
     let arms = &plan.data.treatment.arms;
     let population = &plan.populations[analysis.population];
-    let fail = |message: String| Error::one(Problem::new(ErrorKind::DataValue, format!("analysis \"{}\": {message}", analysis.id)));
+    let fail = |message: String| {
+        Error::one(Problem::new(ErrorKind::DataValue, format!("analysis \"{}\": {message}", analysis.id)).at(analysis.origin.clone()))
+    };
 
     let Column::Categorical { levels: flag_levels, codes: flag_codes } = &data.columns[population.column] else {
         return Err(Error::internal("population flag column is not categorical"));

@@ -161,6 +161,9 @@ pub struct Analysis {
     pub contrasts: Vec<Contrast>,
     /// Two-sided confidence level of every interval in this analysis.
     pub confidence_level: f64,
+    /// Where the analysis is written in the plan, for errors found later
+    /// (an arm with no analysed subjects is reported at its analysis).
+    pub origin: Location,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]

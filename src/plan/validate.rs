@@ -287,9 +287,9 @@ fn read_plan(reader: &mut Reader<'_>, root: &Node) -> Option<Plan> {
         .get("populations")
         .map(|node| read_populations(reader, node, "populations", &variables))
         .unwrap_or_default();
-    let analyses = match (&study, &data, fields.get("analyses")) {
-        (Some(study), Some(data), Some(node)) => read_analyses(reader, node, "analyses", study, data, &variables, &populations),
-        _ => Vec::new(),
+    let analyses = match fields.get("analyses") {
+        Some(node) => read_analyses(reader, node, "analyses", study.as_ref(), data.as_ref(), &variables, &populations),
+        None => Vec::new(),
     };
     Some(Plan { study: study?, data: data?, variables, populations, analyses })
 }
@@ -382,7 +382,7 @@ fn read_data(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &[Vari
         &["subjects", "key", "treatment", "missing", "unmatched-subjects"],
         &["subjects", "key", "treatment"],
     )?;
-    let subjects = fields.get("subjects").and_then(|value| reader.text(value, &fields.child("subjects")));
+    let subjects = fields.get("subjects").and_then(|value| reader.data_path(value, &fields.child("subjects")));
     let key = fields.get("key").and_then(|value| reader.text(value, &fields.child("key")));
     if let (Some(key), Some(key_node)) = (&key, fields.get("key")) {
         if variables.iter().any(|variable| &variable.name == key) {
@@ -407,6 +407,27 @@ fn read_data(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &[Vari
 }
 
 impl Reader<'_> {
+    /// A data file path: relative to the plan's folder and staying inside it,
+    /// so that a plan cannot reach files its reviewers were not given.
+    fn data_path(&mut self, node: &Node, path: &str) -> Option<String> {
+        let text = self.text(node, path)?;
+        let candidate = std::path::Path::new(&text);
+        let escapes = candidate.is_absolute()
+            || text.starts_with('/')
+            || text.starts_with('\\')
+            || candidate.components().any(|component| matches!(component, std::path::Component::ParentDir | std::path::Component::Prefix(_)));
+        if escapes {
+            self.report(
+                ErrorKind::PlanSchema,
+                node,
+                path,
+                format!("\"{text}\" leaves the study folder; give a path relative to the plan's folder, without \"..\""),
+            );
+            return None;
+        }
+        Some(text)
+    }
+
     /// Missing-value codes may include the empty string, so they get their own reader.
     fn text_list_allowing_empty(&mut self, node: &Node, path: &str) -> Option<Vec<String>> {
         let items = self.list(node, path)?;
@@ -429,7 +450,7 @@ fn read_treatment(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &
         &["file", "column", "levels", "reference", "labels"],
         &["file", "column", "levels", "reference"],
     )?;
-    let file = fields.get("file").and_then(|value| reader.text(value, &fields.child("file")));
+    let file = fields.get("file").and_then(|value| reader.data_path(value, &fields.child("file")));
     let column = fields.get("column").and_then(|value| reader.text(value, &fields.child("column")));
     if let (Some(column), Some(column_node)) = (&column, fields.get("column")) {
         if variables.iter().any(|variable| &variable.name == column) {
@@ -547,8 +568,8 @@ fn read_analyses(
     reader: &mut Reader<'_>,
     node: &Node,
     path: &str,
-    study: &Study,
-    data: &DataSpec,
+    study: Option<&Study>,
+    data: Option<&DataSpec>,
     variables: &[Variable],
     populations: &[Population],
 ) -> Vec<Analysis> {
@@ -574,8 +595,8 @@ fn read_analysis(
     reader: &mut Reader<'_>,
     node: &Node,
     path: &str,
-    study: &Study,
-    data: &DataSpec,
+    study: Option<&Study>,
+    data: Option<&DataSpec>,
     variables: &[Variable],
     populations: &[Population],
 ) -> Option<Analysis> {
@@ -637,10 +658,16 @@ fn read_analysis(
         None => Some(None),
         Some(value) => read_pooling(reader, value, &fields.child("pool-small-strata"), strata.as_deref().unwrap_or(&[]), variables).map(Some),
     };
-    let contrasts = fields.get("contrasts").and_then(|value| read_contrasts(reader, value, &fields.child("contrasts"), &data.treatment));
-    let default_confidence = match study.sides {
-        Sides::Two => 1.0 - study.alpha,
-        Sides::One => 1.0 - 2.0 * study.alpha,
+    // Contrasts name arms, so they are checked only when the arms are known;
+    // the plan is rejected anyway when `data` has problems.
+    let contrasts = match data {
+        Some(data) => fields.get("contrasts").and_then(|value| read_contrasts(reader, value, &fields.child("contrasts"), &data.treatment)),
+        None => None,
+    };
+    let default_confidence = match study {
+        Some(Study { sides: Sides::One, alpha, .. }) => 1.0 - 2.0 * alpha,
+        Some(Study { sides: Sides::Two, alpha, .. }) => 1.0 - alpha,
+        None => 0.95,
     };
     let confidence_level = match fields.get("confidence") {
         None => Some(default_confidence),
@@ -669,6 +696,7 @@ fn read_analysis(
         pool_small_strata: pool_small_strata?,
         contrasts: contrasts?,
         confidence_level: confidence_level?,
+        origin: reader.location(node, path),
     })
 }
 
