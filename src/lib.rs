@@ -22,6 +22,7 @@ pub mod design;
 pub mod error;
 pub mod inference;
 pub mod models;
+pub mod multiplicity;
 pub mod output;
 pub mod plan;
 pub mod provenance;
