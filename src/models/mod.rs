@@ -3,6 +3,8 @@
 //! no environment; nothing here knows about plans, files or reports.
 
 pub mod linear;
+pub mod multinomial;
+pub mod ordinal;
 
 /// Why an iterative (or direct) fit stopped. Carried into results and the
 /// report; a fit never panics and never reports NaN in place of a reason.
