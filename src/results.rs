@@ -113,8 +113,8 @@ pub struct AnalysisResult {
     pub population: String,
     pub endpoint: EndpointInfo,
     pub model: ModelInfo,
-    pub covariates: Vec<String>,
-    pub strata: Vec<String>,
+    pub covariates: Vec<VariableInfo>,
+    pub strata: Vec<VariableInfo>,
     pub confidence_level: f64,
     pub in_population_per_arm: Vec<usize>,
     pub analysed_per_arm: Vec<usize>,
@@ -140,6 +140,13 @@ pub struct EndpointInfo {
     pub higher_is: &'static str,
 }
 
+/// A plan variable as named in the data and as labelled in the report.
+#[derive(Debug, Clone, Serialize)]
+pub struct VariableInfo {
+    pub column: String,
+    pub label: String,
+}
+
 #[derive(Debug, Clone, Serialize)]
 pub struct ModelInfo {
     pub family: &'static str,
@@ -149,12 +156,14 @@ pub struct ModelInfo {
 #[derive(Debug, Clone, Serialize)]
 pub struct ExclusionInfo {
     pub missing: String,
+    pub missing_label: String,
     pub per_arm: Vec<usize>,
 }
 
 #[derive(Debug, Clone, Serialize)]
 pub struct PoolingInfo {
     pub stratum: String,
+    pub stratum_label: String,
     pub below: usize,
     pub into: String,
     pub pooled_levels: Vec<PooledLevel>,

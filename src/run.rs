@@ -248,7 +248,8 @@ fn subject_flow(plan: &Plan, data: &StudyData) -> SubjectFlow {
 
 fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &mut Vec<Deviation>) -> AnalysisResult {
     let arms = &plan.data.treatment.arms;
-    let variable_name = |index: usize| plan.variables[index].name.clone();
+    let variable_info = |index: usize| VariableInfo { column: plan.variables[index].name.clone(), label: plan.variables[index].display_name().to_string() };
+    let label_of = |name: &str| plan.variables.iter().find(|variable| variable.name == name).map(|variable| variable.display_name().to_string()).unwrap_or_else(|| name.to_string());
     let endpoint_variable = &plan.variables[analysis.endpoint.variable];
     let mut result = AnalysisResult {
         id: analysis.id.clone(),
@@ -267,17 +268,18 @@ fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &
         model: match analysis.model {
             ModelSpec::Linear => ModelInfo { family: "linear", method: "least squares (pivoted Householder QR with iterative refinement)" },
         },
-        covariates: analysis.covariates.iter().map(|&index| variable_name(index)).collect(),
-        strata: analysis.strata.iter().map(|&index| variable_name(index)).collect(),
+        covariates: analysis.covariates.iter().map(|&index| variable_info(index)).collect(),
+        strata: analysis.strata.iter().map(|&index| variable_info(index)).collect(),
         confidence_level: analysis.confidence_level,
         in_population_per_arm: design.in_population.clone(),
         analysed_per_arm: design.analysed_per_arm.clone(),
-        exclusions: design.exclusions.iter().map(|exclusion| ExclusionInfo { missing: exclusion.variable.clone(), per_arm: exclusion.per_arm.clone() }).collect(),
+        exclusions: design.exclusions.iter().map(|exclusion| ExclusionInfo { missing: exclusion.variable.clone(), missing_label: label_of(&exclusion.variable), per_arm: exclusion.per_arm.clone() }).collect(),
         pooling: design
             .pooling
             .iter()
             .map(|outcome| PoolingInfo {
                 stratum: outcome.variable.clone(),
+                stratum_label: label_of(&outcome.variable),
                 below: outcome.threshold,
                 into: outcome.into.clone(),
                 pooled_levels: outcome.pooled_levels.iter().map(|(level, subjects)| PooledLevel { level: level.clone(), subjects: *subjects }).collect(),

@@ -190,8 +190,8 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
     let confidence = percent(analysis.confidence_level);
 
     let mut terms = vec![format!("treatment (reference: {})", markdown_text(&reference))];
-    terms.extend(analysis.covariates.iter().map(|name| markdown_text(name)));
-    terms.extend(analysis.strata.iter().map(|name| format!("{} (stratum)", markdown_text(name))));
+    terms.extend(analysis.covariates.iter().map(|variable| markdown_text(&variable.label)));
+    terms.extend(analysis.strata.iter().map(|variable| format!("{} (stratum)", markdown_text(&variable.label))));
     let df_text = analysis.fit.as_ref().map(|fit| format!(" on {} residual degrees of freedom", fit.residual_df)).unwrap_or_default();
     let mut methods = format!(
         "A linear model (analysis of covariance) was fitted by least squares to {} in the {} (n = {n_analysed}), with {} as fixed effects. ",
@@ -202,7 +202,7 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
     for pooling in &analysis.pooling {
         methods.push_str(&format!(
             "As planned, levels of {} with fewer than {} analysed subjects were pooled into one level, \"{}\". ",
-            markdown_text(&pooling.stratum),
+            markdown_text(&pooling.stratum_label),
             pooling.below,
             markdown_text(&pooling.into)
         ));
@@ -220,7 +220,7 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
     }];
     for exclusion in &analysis.exclusions {
         analysis_flow.push(FlowRow {
-            label: format!("Excluded: {} missing", markdown_text(&exclusion.missing)),
+            label: format!("Excluded: {} missing", markdown_text(&exclusion.missing_label)),
             cells: exclusion.per_arm.iter().map(usize::to_string).collect(),
             total: exclusion.per_arm.iter().sum::<usize>().to_string(),
         });
@@ -237,7 +237,7 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
             let levels: Vec<String> = pooling.pooled_levels.iter().map(|level| format!("{} ({})", markdown_text(&level.level), level.subjects)).collect();
             format!(
                 "{}: {} pooled into \"{}\" ({} subjects).",
-                markdown_text(&pooling.stratum),
+                markdown_text(&pooling.stratum_label),
                 levels.join(", "),
                 markdown_text(&pooling.into),
                 pooling.pooled_size

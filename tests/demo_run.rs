@@ -1,0 +1,66 @@
+//! The demo study end to end: plans/demo/plan.yaml is copied to a scratch
+//! folder and run with the binary; the outputs must match golden/ byte for
+//! byte, the report must print the SHA-256 of the plan's bytes, and the
+//! manifest must list every output with its hash.
+//!
+//! After an intended change to the report or the numbers, regenerate with
+//! `UPDATE_GOLDEN=1 cargo test --test demo_run` and review `git diff golden/`.
+
+mod common;
+
+use common::{cairn, copy_tree, read_json, root, Scratch};
+
+const GOLDEN_FILES: [&str; 3] = ["report.md", "report.html", "results.json"];
+
+#[test]
+fn the_demo_matches_its_golden_outputs() {
+    let study = Scratch::new("demo");
+    copy_tree(&root().join("plans/demo"), &study.path);
+    let outcome = cairn(&study.path, &["run", "plan.yaml", "--out", "out"]);
+    assert_eq!(outcome.code, 0, "{}", outcome.stderr);
+    let golden = root().join("golden");
+    let update = std::env::var("UPDATE_GOLDEN").as_deref() == Ok("1");
+    let mut differing = Vec::new();
+    for file in GOLDEN_FILES {
+        let fresh = std::fs::read(study.path.join("out").join(file)).expect("fresh output");
+        let expected_path = golden.join(file);
+        if update {
+            std::fs::create_dir_all(&golden).expect("golden folder");
+            std::fs::write(&expected_path, &fresh).expect("write golden");
+        } else if std::fs::read(&expected_path).ok().as_deref() != Some(fresh.as_slice()) {
+            differing.push(file);
+        }
+    }
+    assert!(
+        differing.is_empty(),
+        "{differing:?} differ from golden/; if the change is intended, run `UPDATE_GOLDEN=1 cargo test --test demo_run` and review the diff"
+    );
+}
+
+#[test]
+fn the_demo_report_prints_the_hash_of_the_plan_and_a_complete_manifest() {
+    let study = Scratch::new("demo-hash");
+    copy_tree(&root().join("plans/demo"), &study.path);
+    assert_eq!(cairn(&study.path, &["run", "plan.yaml", "--out", "out"]).code, 0);
+    let plan_hash = cairn::provenance::sha256_hex(&std::fs::read(root().join("plans/demo/plan.yaml")).expect("plan"));
+    let report = std::fs::read_to_string(study.path.join("out/report.md")).expect("report");
+    assert!(report.contains(&plan_hash), "report.md must print the plan's SHA-256");
+    let html = std::fs::read_to_string(study.path.join("out/report.html")).expect("html");
+    assert!(html.contains(&plan_hash), "report.html must print the plan's SHA-256");
+    for text in [&report, &html] {
+        assert!(text.contains("do not replace, review by a qualified statistician"), "the caution must be in every report");
+    }
+    // Self-contained: no scripts, no external resources.
+    for forbidden in ["<script", "http://", "https://", "<link", "@import", "src=\""] {
+        assert!(!html.contains(forbidden), "report.html contains {forbidden}");
+    }
+    let manifest = read_json(&study.path.join("out/manifest.json"));
+    let listed: Vec<&str> = manifest["outputs"].as_array().expect("outputs").iter().filter_map(|entry| entry["file"].as_str()).collect();
+    for file in ["report.md", "report.html", "results.json", "tables/subject-flow.csv", "tables/easi-change-contrasts.csv"] {
+        assert!(listed.contains(&file), "manifest lacks {file}");
+    }
+    let results = read_json(&study.path.join("out/results.json"));
+    for analysis in results["analyses"].as_array().expect("analyses") {
+        assert_eq!(analysis["status"], "fitted", "analysis {} did not fit", analysis["id"]);
+    }
+}
