@@ -60,6 +60,10 @@ fn main() -> ExitCode {
     let arguments = Arguments::parse();
     let outcome = match arguments.command {
         Command::Check { plan } => cairn::run::check(&plan).map(|summary| {
+            for note in &summary.notes {
+                let location = note.location.as_ref().map(|location| format!("{location}: ")).unwrap_or_default();
+                println!("note: {location}{}", note.message);
+            }
             println!(
                 "plan ok: {} analyses, {} variables; {} subjects matched; lock status: {}",
                 summary.analyses, summary.variables, summary.subjects, summary.lock_status
@@ -67,7 +71,7 @@ fn main() -> ExitCode {
         }),
         Command::Lock { plan, by, reason } => lock_plan(&plan, &by, &reason),
         Command::Run { plan, out, force } => cairn::run::run(&plan, &out, force).map(|files| {
-            println!("wrote {} files to {}", files.len() + 0, out.display());
+            println!("wrote {} files to {}", files.len(), out.display());
         }),
     };
     match outcome {

@@ -21,6 +21,57 @@ pub struct Results {
     pub deviations: Vec<Deviation>,
     pub subjects: SubjectFlow,
     pub analyses: Vec<AnalysisResult>,
+    pub multiplicity: Option<MultiplicityResult>,
+}
+
+/// The confirmatory family's decisions.
+#[derive(Debug, Clone, Serialize)]
+pub struct MultiplicityResult {
+    pub procedure: &'static str,
+    pub alpha: f64,
+    /// 1 or 2: whether the hypotheses' p-values are one-sided (in the direction of benefit) or two-sided.
+    pub sides: u32,
+    pub hypotheses: Vec<HypothesisResultInfo>,
+    /// Sequential tests (holm, hochberg, fixed-sequence, fallback), in order.
+    pub tests: Vec<TestStepInfo>,
+    /// Rejections of the graphical procedure, in order, with the graph after each.
+    pub graph_steps: Vec<GraphStepInfo>,
+    /// Planned transition weights, rows "from", columns "to" (graphical only; empty otherwise).
+    pub transitions: Vec<Vec<f64>>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct HypothesisResultInfo {
+    pub id: String,
+    pub label: Option<String>,
+    pub analysis: String,
+    pub contrast: String,
+    pub initial_weight: f64,
+    /// `null` when the analysis or contrast could not be estimated.
+    pub raw_p: Option<f64>,
+    pub adjusted_p: f64,
+    pub rejected: bool,
+    pub rejection_step: Option<usize>,
+    pub analysis_failed: bool,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct TestStepInfo {
+    pub step: usize,
+    pub hypothesis: String,
+    pub p_value: f64,
+    pub local_level: f64,
+    pub rejected: bool,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct GraphStepInfo {
+    pub step: usize,
+    pub rejected: String,
+    pub p_value: f64,
+    pub local_levels: Vec<f64>,
+    pub weights_after: Vec<f64>,
+    pub transitions_after: Vec<Vec<f64>>,
 }
 
 #[derive(Debug, Clone, Serialize)]

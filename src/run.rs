@@ -30,6 +30,8 @@ pub struct Inputs {
 
 /// What `check` found, for its one-line summary.
 pub struct CheckSummary {
+    /// Remarks that do not stop the plan, such as a procedure's assumptions.
+    pub notes: Vec<crate::error::Problem>,
     pub analyses: usize,
     pub variables: usize,
     pub subjects: usize,
@@ -58,6 +60,7 @@ pub fn check(plan_path: &Path) -> Result<CheckSummary, Error> {
         design::build(&inputs.plan.plan, analysis, &inputs.data)?;
     }
     Ok(CheckSummary {
+        notes: inputs.plan.plan.notes.clone(),
         analyses: inputs.plan.plan.analyses.len(),
         variables: inputs.plan.plan.variables.len(),
         subjects: inputs.data.subject_ids.len(),
@@ -132,6 +135,10 @@ pub fn produce(inputs: &Inputs) -> Result<Staged, Error> {
         analyses.push(result);
     }
 
+    let multiplicity = match &plan.multiplicity {
+        Some(spec) => Some(apply_multiplicity(plan, spec, &analyses, &mut deviations)?),
+        None => None,
+    };
     let results = Results {
         schema: SCHEMA,
         tool: Tool { name: "cairn", version: TOOL_VERSION },
@@ -153,6 +160,7 @@ pub fn produce(inputs: &Inputs) -> Result<Staged, Error> {
         inputs: input_list(inputs),
         deviations,
         subjects: subject_flow(plan, &inputs.data),
+        multiplicity,
         analyses,
     };
     let results_json = to_json(&results)?;
@@ -381,4 +389,97 @@ fn manifest(staged: &Staged) -> Result<Vec<u8>, Error> {
         .map_err(|cause| Error::internal(format!("cannot serialise the manifest: {cause}")))?;
     bytes.push(b'\n');
     Ok(bytes)
+}
+
+/// The p-value of one hypothesis: two-sided as reported with the contrast, or
+/// one-sided in the direction of benefit (the endpoint's `higher-is` says
+/// which sign of arm − versus is benefit). `None` when it cannot be estimated.
+fn hypothesis_p_value(result: &AnalysisResult, contrast: &str, sides: u32) -> Option<f64> {
+    let contrast = result.contrasts.iter().find(|candidate| candidate.id == contrast)?;
+    let estimate = contrast.estimate.as_ref()?;
+    if sides == 2 {
+        return Some(estimate.p_value);
+    }
+    let benefit_statistic = if result.endpoint.higher_is == "better" { estimate.statistic } else { -estimate.statistic };
+    match estimate.df {
+        Some(df) => crate::inference::distributions::t_upper_p(benefit_statistic, df),
+        None => Some(crate::inference::distributions::normal_upper(benefit_statistic)),
+    }
+}
+
+fn apply_multiplicity(plan: &Plan, spec: &plan::MultiplicitySpec, analyses: &[AnalysisResult], deviations: &mut Vec<Deviation>) -> Result<MultiplicityResult, Error> {
+    use crate::multiplicity::Trace;
+    let sides = plan.study.sides.count();
+    let p_values: Vec<Option<f64>> = spec
+        .hypotheses
+        .iter()
+        .map(|hypothesis| {
+            let analysis = &plan.analyses[hypothesis.analysis];
+            let contrast = &analysis.contrasts[hypothesis.contrast];
+            hypothesis_p_value(&analyses[hypothesis.analysis], &contrast.id, sides)
+        })
+        .collect();
+    for (hypothesis, p) in spec.hypotheses.iter().zip(&p_values) {
+        if p.is_none() {
+            deviations.push(Deviation {
+                code: "HYPOTHESIS-UNTESTABLE",
+                severity: "critical",
+                analysis: Some(plan.analyses[hypothesis.analysis].id.clone()),
+                message: format!("hypothesis {} has no p-value because its analysis or contrast could not be estimated; it cannot be rejected", hypothesis.id),
+            });
+        }
+    }
+    let outcome = crate::multiplicity::apply(&spec.strategy, &p_values, spec.alpha)
+        .map_err(|error| Error::internal(format!("the multiplicity strategy was validated but the engine refused it: {error}")))?;
+    let name = |index: usize| spec.hypotheses[index].id.clone();
+    let hypotheses = spec
+        .hypotheses
+        .iter()
+        .zip(&outcome.hypotheses)
+        .map(|(hypothesis, result)| HypothesisResultInfo {
+            id: hypothesis.id.clone(),
+            label: hypothesis.label.clone(),
+            analysis: plan.analyses[hypothesis.analysis].id.clone(),
+            contrast: plan.analyses[hypothesis.analysis].contrasts[hypothesis.contrast].id.clone(),
+            initial_weight: hypothesis.weight,
+            raw_p: result.raw_p,
+            adjusted_p: result.adjusted_p,
+            rejected: result.rejected,
+            rejection_step: result.rejection_step,
+            analysis_failed: result.analysis_failed,
+        })
+        .collect();
+    let (tests, graph_steps) = match &outcome.trace {
+        Trace::NotSequential => (Vec::new(), Vec::new()),
+        Trace::Tests(steps) => (
+            steps
+                .iter()
+                .map(|step| TestStepInfo { step: step.step, hypothesis: name(step.hypothesis), p_value: step.p_value, local_level: step.local_level, rejected: step.rejected })
+                .collect(),
+            Vec::new(),
+        ),
+        Trace::Graph(steps) => (
+            Vec::new(),
+            steps
+                .iter()
+                .map(|step| GraphStepInfo {
+                    step: step.step,
+                    rejected: name(step.rejected),
+                    p_value: step.p_value,
+                    local_levels: step.local_levels.clone(),
+                    weights_after: step.weights_after.clone(),
+                    transitions_after: step.transitions_after.clone(),
+                })
+                .collect(),
+        ),
+    };
+    Ok(MultiplicityResult {
+        procedure: spec.procedure.name(),
+        alpha: spec.alpha,
+        sides,
+        hypotheses,
+        tests,
+        graph_steps,
+        transitions: if spec.procedure == crate::multiplicity::Procedure::Graphical { spec.transitions.clone() } else { Vec::new() },
+    })
 }

@@ -15,6 +15,12 @@ pub fn t_two_sided_p(statistic: f64, df: f64) -> Option<f64> {
     finite((2.0 * distribution.sf(statistic.abs())).min(1.0))
 }
 
+/// Upper-tail p-value P(T > t) of Student's t with `df` degrees of freedom.
+pub fn t_upper_p(statistic: f64, df: f64) -> Option<f64> {
+    let distribution = StudentsT::new(0.0, 1.0, df).ok()?;
+    finite(distribution.sf(statistic))
+}
+
 /// Upper-tail p-value of an F statistic.
 pub fn f_upper_p(statistic: f64, df1: f64, df2: f64) -> Option<f64> {
     let distribution = FisherSnedecor::new(df1, df2).ok()?;

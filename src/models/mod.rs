@@ -2,6 +2,7 @@
 //! and return estimates, their covariance and a stop reason. No I/O, no clock,
 //! no environment; nothing here knows about plans, files or reports.
 
+pub mod glm;
 pub mod linear;
 pub mod multinomial;
 pub mod ordinal;

@@ -29,6 +29,37 @@ pub struct Plan {
     pub variables: Vec<Variable>,
     pub populations: Vec<Population>,
     pub analyses: Vec<Analysis>,
+    /// The confirmatory family and how its type I error is controlled, if planned.
+    pub multiplicity: Option<MultiplicitySpec>,
+    /// Remarks for the statistician that do not stop the plan (shown by `check`).
+    pub notes: Vec<Problem>,
+}
+
+/// The family of hypotheses whose familywise error rate is controlled together.
+#[derive(Debug, Clone, PartialEq)]
+pub struct MultiplicitySpec {
+    pub procedure: crate::multiplicity::Procedure,
+    /// The familywise level (the study's alpha unless the plan says otherwise).
+    pub alpha: f64,
+    /// In the plan's order, which is the testing order for fixed-sequence and fallback.
+    pub hypotheses: Vec<HypothesisSpec>,
+    /// The validated strategy, ready for the engine.
+    pub strategy: crate::multiplicity::Strategy,
+    /// Transition weights as planned (m × m; all zero unless graphical).
+    pub transitions: Vec<Vec<f64>>,
+}
+
+/// One hypothesis of the family: a planned contrast of a planned analysis.
+#[derive(Debug, Clone, PartialEq)]
+pub struct HypothesisSpec {
+    pub id: String,
+    pub label: Option<String>,
+    /// Index into `Plan::analyses`.
+    pub analysis: usize,
+    /// Index into that analysis's contrasts.
+    pub contrast: usize,
+    /// The initial weight (share of alpha) as planned or as filled in.
+    pub weight: f64,
 }
 
 #[derive(Debug, Clone, PartialEq)]

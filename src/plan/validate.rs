@@ -248,7 +248,8 @@ fn looks_numeric(text: &str) -> bool {
         && body.chars().all(|character| character.is_ascii_digit() || matches!(character, '.' | 'e' | 'E' | '-' | '+'))
 }
 
-const TOP_KEYS: &[&str] = &["cairn-plan", "study", "data", "variables", "populations", "analyses"];
+const TOP_KEYS: &[&str] = &["cairn-plan", "study", "data", "variables", "populations", "analyses", "multiplicity"];
+const REQUIRED_TOP_KEYS: &[&str] = &["cairn-plan", "study", "data", "variables", "populations", "analyses"];
 
 fn read_plan(reader: &mut Reader<'_>, root: &Node) -> Option<Plan> {
     // The version is checked first and alone: a plan of another schema
@@ -279,7 +280,7 @@ fn read_plan(reader: &mut Reader<'_>, root: &Node) -> Option<Plan> {
             }
         }
     }
-    let fields = reader.mapping(root, "", TOP_KEYS, TOP_KEYS)?;
+    let fields = reader.mapping(root, "", TOP_KEYS, REQUIRED_TOP_KEYS)?;
     let study = fields.get("study").and_then(|node| read_study(reader, node, &fields.child("study")));
     let variables = fields.get("variables").map(|node| read_variables(reader, node, "variables")).unwrap_or_default();
     let data = fields.get("data").and_then(|node| read_data(reader, node, "data", &variables));
@@ -291,7 +292,231 @@ fn read_plan(reader: &mut Reader<'_>, root: &Node) -> Option<Plan> {
         Some(node) => read_analyses(reader, node, "analyses", study.as_ref(), data.as_ref(), &variables, &populations),
         None => Vec::new(),
     };
-    Some(Plan { study: study?, data: data?, variables, populations, analyses })
+    let mut notes = Vec::new();
+    let multiplicity = match (fields.get("multiplicity"), &study) {
+        (Some(node), Some(study)) => read_multiplicity(reader, node, "multiplicity", study, &analyses, &mut notes),
+        _ => None,
+    };
+    Some(Plan { study: study?, data: data?, variables, populations, analyses, multiplicity, notes })
+}
+
+fn read_multiplicity(
+    reader: &mut Reader<'_>,
+    node: &Node,
+    path: &str,
+    study: &Study,
+    analyses: &[Analysis],
+    notes: &mut Vec<Problem>,
+) -> Option<MultiplicitySpec> {
+    use crate::multiplicity::{Procedure, Strategy};
+    let fields = reader.mapping(node, path, &["procedure", "alpha", "hypotheses", "transitions"], &["procedure", "hypotheses"])?;
+    let procedure_node = fields.get("procedure");
+    let procedure = procedure_node.and_then(|value| {
+        reader.choice(
+            value,
+            &fields.child("procedure"),
+            &[
+                ("bonferroni", Procedure::Bonferroni),
+                ("holm", Procedure::Holm),
+                ("hochberg", Procedure::Hochberg),
+                ("hommel", Procedure::Hommel),
+                ("fixed-sequence", Procedure::FixedSequence),
+                ("fallback", Procedure::Fallback),
+                ("graphical", Procedure::Graphical),
+            ],
+        )
+    });
+    if let (Some(procedure @ (Procedure::Hochberg | Procedure::Hommel)), Some(value)) = (procedure, procedure_node) {
+        let name = if procedure == Procedure::Hochberg { "Hochberg" } else { "Hommel" };
+        notes.push(
+            Problem::new(
+                ErrorKind::PlanSchema,
+                format!(
+                    "the {name} procedure controls the familywise error rate only when the test statistics are independent or positively dependent; \
+                     make sure that holds for this family (common practice; see the 2022 FDA guidance on multiple endpoints)"
+                ),
+            )
+            .at(reader.location(value, &fields.child("procedure"))),
+        );
+    }
+    let alpha = match fields.get("alpha") {
+        None => Some(study.alpha),
+        Some(value) => match reader.number(value, &fields.child("alpha")) {
+            Some(alpha) if alpha > 0.0 && alpha <= study.alpha => Some(alpha),
+            Some(alpha) => {
+                reader.report(
+                    ErrorKind::PlanSchema,
+                    value,
+                    &fields.child("alpha"),
+                    format!("the family's alpha must lie above 0 and at most the study's alpha ({}); found {alpha}", study.alpha),
+                );
+                None
+            }
+            None => None,
+        },
+    };
+
+    // Hypotheses: a list, in testing order.
+    let mut hypotheses: Vec<HypothesisSpec> = Vec::new();
+    let mut weight_given: Vec<bool> = Vec::new();
+    let mut complete = true;
+    let hypotheses_node = fields.get("hypotheses");
+    let analysis_ids: Vec<&str> = analyses.iter().map(|analysis| analysis.id.as_str()).collect();
+    if let Some(list_node) = hypotheses_node {
+        if let Some(items) = reader.list(list_node, &fields.child("hypotheses")) {
+            if items.is_empty() {
+                reader.report(ErrorKind::PlanSchema, list_node, &fields.child("hypotheses"), "a family needs at least one hypothesis".to_string());
+                complete = false;
+            }
+            for (index, item) in items.iter().enumerate() {
+                let item_path = format!("{}[{index}]", fields.child("hypotheses"));
+                let Some(entry) = reader.mapping(item, &item_path, &["id", "label", "analysis", "contrast", "weight"], &["id", "analysis", "contrast"]) else {
+                    complete = false;
+                    continue;
+                };
+                let id = entry.get("id").and_then(|value| reader.identifier(value, &entry.child("id")));
+                let label = entry.get("label").and_then(|value| reader.text(value, &entry.child("label")));
+                let analysis = entry.get("analysis").and_then(|value| reader.reference(value, &entry.child("analysis"), "analysis", &analysis_ids));
+                let contrast = match (analysis, entry.get("contrast")) {
+                    (Some(analysis), Some(value)) => {
+                        let contrast_ids: Vec<&str> = analyses[analysis].contrasts.iter().map(|contrast| contrast.id.as_str()).collect();
+                        reader.reference(value, &entry.child("contrast"), &format!("contrast of analysis \"{}\"", analyses[analysis].id), &contrast_ids)
+                    }
+                    _ => None,
+                };
+                let weight = match entry.get("weight") {
+                    None => Some(None),
+                    Some(value) => match reader.number(value, &entry.child("weight")) {
+                        Some(weight) if (0.0..=1.0).contains(&weight) => Some(Some(weight)),
+                        Some(weight) => {
+                            reader.report(ErrorKind::PlanSchema, value, &entry.child("weight"), format!("a weight is a share of alpha between 0 and 1; found {weight}"));
+                            None
+                        }
+                        None => None,
+                    },
+                };
+                if let Some(id) = &id {
+                    if hypotheses.iter().any(|existing| &existing.id == id) {
+                        reader.report(ErrorKind::PlanSchema, item, &item_path, format!("hypothesis id \"{id}\" is used twice"));
+                        complete = false;
+                    }
+                }
+                match (id, analysis, contrast, weight) {
+                    (Some(id), Some(analysis), Some(contrast), Some(weight)) => {
+                        weight_given.push(weight.is_some());
+                        hypotheses.push(HypothesisSpec { id, label, analysis, contrast, weight: weight.unwrap_or(0.0) });
+                    }
+                    _ => complete = false,
+                }
+            }
+        } else {
+            complete = false;
+        }
+    }
+    let procedure = procedure?;
+    let alpha = alpha?;
+    if !complete {
+        return None;
+    }
+    let hypotheses_node = hypotheses_node?;
+    let m = hypotheses.len();
+    let any_weight = weight_given.iter().any(|given| *given);
+    let all_weights = weight_given.iter().all(|given| *given);
+    let weighted = matches!(procedure, Procedure::Bonferroni | Procedure::Holm | Procedure::Fallback | Procedure::Graphical);
+    if any_weight && !weighted {
+        reader.report(
+            ErrorKind::PlanSchema,
+            hypotheses_node,
+            &fields.child("hypotheses"),
+            format!("the {} procedure takes no weights; remove them", procedure.name()),
+        );
+        return None;
+    }
+    if any_weight && !all_weights {
+        reader.report(ErrorKind::PlanSchema, hypotheses_node, &fields.child("hypotheses"), "give a weight to every hypothesis or to none".to_string());
+        return None;
+    }
+    if procedure == Procedure::Graphical && !all_weights {
+        reader.report(ErrorKind::PlanSchema, hypotheses_node, &fields.child("hypotheses"), "the graphical procedure needs an initial weight for every hypothesis".to_string());
+        return None;
+    }
+    let total: f64 = hypotheses.iter().map(|hypothesis| hypothesis.weight).sum();
+    if any_weight && total > 1.0 + crate::multiplicity::SUM_TOLERANCE {
+        reader.report(ErrorKind::PlanSchema, hypotheses_node, &fields.child("hypotheses"), format!("the weights sum to {total}, above 1"));
+        return None;
+    }
+
+    // Transitions: graphical only; a mapping from hypothesis to {hypothesis: weight}.
+    let mut transitions = vec![vec![0.0; m]; m];
+    let ids: Vec<&str> = hypotheses.iter().map(|hypothesis| hypothesis.id.as_str()).collect();
+    match (procedure, fields.get("transitions")) {
+        (Procedure::Graphical, None) => {
+            reader.report(ErrorKind::PlanSchema, node, path, "the graphical procedure needs \"transitions\" (use {} for none)".to_string());
+            return None;
+        }
+        (Procedure::Graphical, Some(transitions_node)) => {
+            let transitions_path = fields.child("transitions");
+            let is_empty_flow_mapping = matches!(&transitions_node.value, NodeValue::Mapping(pairs) if pairs.is_empty());
+            if !is_empty_flow_mapping {
+                for (from_name, from_key, row_node) in reader.named_entries(transitions_node, &transitions_path) {
+                    let row_path = join_path(&transitions_path, from_name);
+                    let Some(from) = reader.reference(from_key, &row_path, "hypothesis", &ids) else { complete = false; continue };
+                    let mut row_total = 0.0;
+                    for (to_name, to_key, weight_node) in reader.named_entries(row_node, &row_path) {
+                        let edge_path = join_path(&row_path, to_name);
+                        let Some(to) = reader.reference(to_key, &edge_path, "hypothesis", &ids) else { complete = false; continue };
+                        if to == from {
+                            reader.report(ErrorKind::PlanSchema, to_key, &edge_path, format!("a hypothesis cannot pass weight to itself (\"{from_name}\" to \"{to_name}\")"));
+                            complete = false;
+                            continue;
+                        }
+                        match reader.number(weight_node, &edge_path) {
+                            Some(weight) if (0.0..=1.0).contains(&weight) => {
+                                transitions[from][to] = weight;
+                                row_total += weight;
+                            }
+                            Some(weight) => {
+                                reader.report(ErrorKind::PlanSchema, weight_node, &edge_path, format!("a transition weight lies between 0 and 1; found {weight}"));
+                                complete = false;
+                            }
+                            None => complete = false,
+                        }
+                    }
+                    if row_total > 1.0 + crate::multiplicity::SUM_TOLERANCE {
+                        reader.report(ErrorKind::PlanSchema, row_node, &row_path, format!("the transitions out of \"{from_name}\" sum to {row_total}, above 1"));
+                        complete = false;
+                    }
+                }
+            }
+        }
+        (_, Some(transitions_node)) => {
+            reader.report(
+                ErrorKind::PlanSchema,
+                transitions_node,
+                &fields.child("transitions"),
+                format!("transitions belong to the graphical procedure; the {} procedure takes none", procedure.name()),
+            );
+            return None;
+        }
+        (_, None) => {}
+    }
+    if !complete {
+        return None;
+    }
+    let weights = if any_weight { hypotheses.iter().map(|hypothesis| hypothesis.weight).collect() } else { Vec::new() };
+    let matrix = if procedure == Procedure::Graphical { transitions.clone() } else { Vec::new() };
+    match Strategy::new(procedure, m, weights, matrix) {
+        Ok(strategy) => {
+            for (hypothesis, weight) in hypotheses.iter_mut().zip(strategy.weights()) {
+                hypothesis.weight = *weight;
+            }
+            Some(MultiplicitySpec { procedure, alpha, hypotheses, strategy, transitions })
+        }
+        Err(error) => {
+            reader.report(ErrorKind::PlanSchema, node, path, format!("the strategy is not valid: {error}"));
+            None
+        }
+    }
 }
 
 fn read_study(reader: &mut Reader<'_>, node: &Node, path: &str) -> Option<Study> {

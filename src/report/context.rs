@@ -24,6 +24,26 @@ pub struct Context {
     flow: Vec<FlowRow>,
     flow_notes: Vec<String>,
     analyses: Vec<AnalysisView>,
+    multiplicity: Option<MultiplicityView>,
+}
+
+#[derive(Serialize)]
+struct MultiplicityView {
+    section: usize,
+    summary: String,
+    rows: Vec<HypothesisRow>,
+    steps: Vec<String>,
+    conclusion: String,
+}
+
+#[derive(Serialize)]
+struct HypothesisRow {
+    id: String,
+    comparison: String,
+    weight: String,
+    raw_p: String,
+    adjusted_p: String,
+    decision: String,
 }
 
 #[derive(Serialize)]
@@ -144,7 +164,8 @@ pub fn build(results: &Results) -> Context {
         flow_notes.push(format!("{} allocated subject(s) have no row in the subjects file.", results.subjects.only_in_allocation_file.len()));
     }
 
-    let analyses = results.analyses.iter().enumerate().map(|(index, analysis)| analysis_view(index + 1, analysis, results, &arm_label)).collect();
+    let analyses: Vec<AnalysisView> = results.analyses.iter().enumerate().map(|(index, analysis)| analysis_view(index + 1, analysis, results, &arm_label)).collect();
+    let multiplicity = results.multiplicity.as_ref().map(|family| multiplicity_view(analyses.len() + 3, family, results, &arm_label));
     Context {
         study_id: markdown_text(&results.study.id),
         study_title: markdown_text(&results.study.title),
@@ -173,7 +194,145 @@ pub fn build(results: &Results) -> Context {
         flow,
         flow_notes,
         analyses,
+        multiplicity,
     }
+}
+
+/// A weight or level with up to four significant decimals, trailing zeros trimmed.
+fn share(value: f64) -> String {
+    let text = fixed(value, 4);
+    let trimmed = text.trim_end_matches('0').trim_end_matches('.');
+    if trimmed.is_empty() { "0".to_string() } else { trimmed.to_string() }
+}
+
+fn level(value: f64) -> String {
+    if value != 0.0 && value.abs() < 1e-4 {
+        return format!("{value:.1e}");
+    }
+    let text = format!("{value:.6}");
+    let trimmed = text.trim_end_matches('0').trim_end_matches('.');
+    trimmed.to_string()
+}
+
+fn multiplicity_view(section: usize, family: &MultiplicityResult, results: &Results, arm_label: &dyn Fn(&str) -> String) -> MultiplicityView {
+    let procedure_words = match family.procedure {
+        "bonferroni" => "the (weighted) Bonferroni procedure",
+        "holm" => "the (weighted) Holm procedure (Holm 1979)",
+        "hochberg" => "the Hochberg step-up procedure (Hochberg 1988)",
+        "hommel" => "the Hommel procedure (Hommel 1988)",
+        "fixed-sequence" => "a fixed-sequence procedure in the planned order",
+        "fallback" => "the fallback procedure (Wiens 2003) in the planned order",
+        _ => "the graphical procedure of Bretz, Maurer, Brannath and Posch (2009) with the planned initial weights and transitions",
+    };
+    let sides = if family.sides == 1 { "one-sided p-values in the direction of benefit" } else { "two-sided p-values" };
+    let summary = format!(
+        "The familywise error rate over the {} hypotheses below is controlled at α = {} ({sides}) by {procedure_words}. A hypothesis is rejected when its adjusted p-value is at most α.",
+        family.hypotheses.len(),
+        family.alpha
+    );
+    let comparison_of = |hypothesis: &HypothesisResultInfo| {
+        let analysis = results.analyses.iter().find(|analysis| analysis.id == hypothesis.analysis);
+        let contrast = analysis.and_then(|analysis| analysis.contrasts.iter().find(|contrast| contrast.id == hypothesis.contrast));
+        let text = match (analysis, contrast) {
+            (Some(analysis), Some(contrast)) => format!("{}: {} − {}", analysis.title, arm_label(&contrast.arm), arm_label(&contrast.versus)),
+            _ => format!("{} / {}", hypothesis.analysis, hypothesis.contrast),
+        };
+        match &hypothesis.label {
+            Some(label) => format!("{} ({})", markdown_text(label), markdown_text(&text)),
+            None => markdown_text(&text),
+        }
+    };
+    let rows = family
+        .hypotheses
+        .iter()
+        .map(|hypothesis| HypothesisRow {
+            id: markdown_text(&hypothesis.id),
+            comparison: comparison_of(hypothesis),
+            weight: share(hypothesis.initial_weight),
+            raw_p: hypothesis.raw_p.map(p_value).unwrap_or_else(|| "none".to_string()),
+            adjusted_p: p_value(hypothesis.adjusted_p),
+            decision: if hypothesis.analysis_failed {
+                "cannot be rejected: its analysis failed".to_string()
+            } else if hypothesis.rejected {
+                match hypothesis.rejection_step {
+                    Some(step) => format!("rejected (step {step})"),
+                    None => "rejected".to_string(),
+                }
+            } else {
+                "not rejected".to_string()
+            },
+        })
+        .collect();
+    let ids: Vec<String> = family.hypotheses.iter().map(|hypothesis| markdown_text(&hypothesis.id)).collect();
+    let mut steps = Vec::new();
+    for step in &family.tests {
+        let index = family.hypotheses.iter().position(|hypothesis| hypothesis.id == step.hypothesis).unwrap_or(0);
+        steps.push(format!(
+            "Step {}: {} is tested at level {}: p = {} → {}.",
+            step.step,
+            ids[index],
+            level(step.local_level),
+            level(step.p_value),
+            if step.rejected { "rejected" } else { "not rejected" }
+        ));
+    }
+    let mut current_weights: Vec<f64> = family.hypotheses.iter().map(|hypothesis| hypothesis.initial_weight).collect();
+    for step in &family.graph_steps {
+        let index = family.hypotheses.iter().position(|hypothesis| hypothesis.id == step.rejected).unwrap_or(0);
+        let weights: Vec<String> = step
+            .weights_after
+            .iter()
+            .enumerate()
+            .filter(|(position, weight)| **weight > 0.0 && *position != index)
+            .map(|(position, weight)| format!("{} {}", ids[position], share(*weight)))
+            .collect();
+        let mut edges = Vec::new();
+        for (from, row) in step.transitions_after.iter().enumerate() {
+            for (to, weight) in row.iter().enumerate() {
+                if *weight > 0.0 {
+                    edges.push(format!("{}→{} {}", ids[from], ids[to], share(*weight)));
+                }
+            }
+        }
+        steps.push(format!(
+            "Step {}: {} has p = {} ≤ its local level {} (weight {} × α), so it is rejected and its weight is passed on. Weights now: {}. Transitions now: {}.",
+            step.step,
+            ids[index],
+            level(step.p_value),
+            level(step.local_levels[index]),
+            share(current_weights[index]),
+            if weights.is_empty() { "none".to_string() } else { weights.join(", ") },
+            if edges.is_empty() { "none".to_string() } else { edges.join(", ") }
+        ));
+        current_weights = step.weights_after.clone();
+    }
+    let remaining: Vec<String> = family
+        .hypotheses
+        .iter()
+        .enumerate()
+        .filter(|(_, hypothesis)| !hypothesis.rejected)
+        .map(|(index, hypothesis)| {
+            let p = hypothesis.raw_p.map(level).unwrap_or_else(|| "none".to_string());
+            if family.procedure == "graphical" {
+                format!("{} (p = {p}, local level {})", ids[index], level(current_weights[index] * family.alpha))
+            } else {
+                format!("{} (p = {p})", ids[index])
+            }
+        })
+        .collect();
+    let rejected = family.hypotheses.iter().filter(|hypothesis| hypothesis.rejected).count();
+    let conclusion = if remaining.is_empty() {
+        format!("All {rejected} hypotheses are rejected at familywise level {}.", family.alpha)
+    } else if family.procedure == "graphical" {
+        format!(
+            "{rejected} of {} hypotheses are rejected. No remaining hypothesis has a p-value at or below its local level: {}.",
+            family.hypotheses.len(),
+            remaining.join(", ")
+        )
+    } else {
+        format!("{rejected} of {} hypotheses are rejected; not rejected: {}.", family.hypotheses.len(), remaining.join(", "))
+    };
+    MultiplicityView { section, summary, rows, steps, conclusion }
 }
 
 fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, arm_label: &dyn Fn(&str) -> String) -> AnalysisView {
