@@ -177,10 +177,14 @@ pub struct AnalysisResult {
     pub failure: Option<String>,
     pub fit: Option<FitSummary>,
     pub coefficients: Vec<CoefficientInfo>,
-    pub treatment_test: Option<TestInfo>,
+    /// Overall tests of treatment: F (linear), or Wald chi-square and likelihood ratio.
+    pub treatment_tests: Vec<TestInfo>,
     pub treatment_test_failure: Option<String>,
     pub contrasts: Vec<ContrastInfo>,
     pub adjusted_means: Vec<ArmMeanInfo>,
+    pub checks: Vec<CheckInfo>,
+    /// The planned fallback that was used, in words.
+    pub fallback_used: Option<String>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -189,6 +193,8 @@ pub struct EndpointInfo {
     pub label: String,
     pub kind: &'static str,
     pub higher_is: &'static str,
+    /// Binary endpoints: the level that counts as the event.
+    pub event: Option<String>,
 }
 
 /// A plan variable as named in the data and as labelled in the report.
@@ -200,8 +206,10 @@ pub struct VariableInfo {
 
 #[derive(Debug, Clone, Serialize)]
 pub struct ModelInfo {
+    /// As named in the plan: linear, binomial, poisson, negative-binomial, gamma, cumulative, multinomial.
     pub family: &'static str,
-    pub method: &'static str,
+    /// The model actually fitted (after any fallback) and how, in words.
+    pub description: String,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -230,21 +238,92 @@ pub struct PooledLevel {
 #[derive(Debug, Clone, Serialize)]
 pub struct FitSummary {
     pub n_analysed: usize,
-    pub n_columns: usize,
+    /// Estimated parameters (design columns, plus cut-points for ordinal models; per category for nominal).
+    pub n_parameters: usize,
     pub rank: usize,
-    pub residual_df: usize,
-    pub residual_sd: f64,
+    /// How the fit ended, in words.
+    pub stop_reason: String,
+    pub converged: bool,
+    pub iterations: Option<usize>,
+    /// Steps of iterative refinement of the least-squares solution (linear models).
+    pub refinement_steps: Option<usize>,
+    pub residual_df: Option<usize>,
+    pub residual_sd: Option<f64>,
     pub r_squared: Option<f64>,
     pub adjusted_r_squared: Option<f64>,
-    pub refinement_steps: usize,
+    pub deviance: Option<f64>,
+    pub null_deviance: Option<f64>,
+    pub log_likelihood: Option<f64>,
+    /// Estimated dispersion (Gamma).
+    pub dispersion: Option<f64>,
+    pub pearson_chi_square: Option<f64>,
+    /// Negative binomial θ (variance μ + μ²/θ) and its standard error.
+    pub theta: Option<f64>,
+    pub theta_standard_error: Option<f64>,
     /// Design columns dropped because they are linear combinations of earlier ones.
     pub aliased_columns: Vec<String>,
+}
+
+impl From<&crate::inference::FitStatistics> for FitSummary {
+    fn from(fit: &crate::inference::FitStatistics) -> FitSummary {
+        FitSummary {
+            n_analysed: fit.n_analysed,
+            n_parameters: fit.n_parameters,
+            rank: fit.rank,
+            stop_reason: fit.stop_reason.clone(),
+            converged: fit.converged,
+            iterations: fit.iterations,
+            refinement_steps: fit.refinement_steps,
+            residual_df: fit.residual_df,
+            residual_sd: fit.residual_sd,
+            r_squared: fit.r_squared,
+            adjusted_r_squared: fit.adjusted_r_squared,
+            deviance: fit.deviance,
+            null_deviance: fit.null_deviance,
+            log_likelihood: fit.log_likelihood,
+            dispersion: fit.dispersion,
+            pearson_chi_square: fit.pearson_chi_square,
+            theta: fit.theta,
+            theta_standard_error: fit.theta_standard_error,
+            aliased_columns: fit.aliased_columns.clone(),
+        }
+    }
+}
+
+/// An assumption check or supportive test.
+#[derive(Debug, Clone, Serialize)]
+pub struct CheckInfo {
+    pub name: String,
+    pub rows: Vec<CheckRowInfo>,
+    pub failed: bool,
+    pub verdict: String,
+    pub details: Vec<String>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct CheckRowInfo {
+    pub term: String,
+    pub statistic_name: &'static str,
+    pub statistic: f64,
+    pub df: f64,
+    pub p_value: f64,
+}
+
+/// An exponentiated contrast (odds ratio, rate ratio, relative-risk ratio).
+#[derive(Debug, Clone, Serialize)]
+pub struct RatioInfo {
+    pub name: &'static str,
+    pub estimate: f64,
+    pub lower: f64,
+    pub upper: f64,
 }
 
 #[derive(Debug, Clone, Serialize)]
 pub struct CoefficientInfo {
     pub name: String,
     pub term: String,
+    /// The outcome category of the row (nominal endpoints), else `null`.
+    pub category: Option<String>,
     pub aliased: bool,
     pub estimate: Option<EstimateInfo>,
 }
@@ -274,9 +353,15 @@ pub struct ContrastInfo {
     pub id: String,
     pub arm: String,
     pub versus: String,
-    /// "difference" for linear models.
+    /// The outcome category compared with the reference category (nominal endpoints), else `null`.
+    pub category: Option<String>,
+    /// The scale of `estimate`: "difference", "log odds ratio", "log rate ratio", …
     pub scale: &'static str,
     pub estimate: Option<EstimateInfo>,
+    /// The exponentiated estimate and limits, for log and logit links.
+    pub ratio: Option<RatioInfo>,
+    /// "Wald" or "profile likelihood".
+    pub interval_method: &'static str,
     pub failure: Option<String>,
 }
 

@@ -9,8 +9,7 @@
 use crate::data::{self, StudyData};
 use crate::design::{self, Design};
 use crate::error::Error;
-use crate::inference::linear::{infer, LinearInference};
-use crate::models::linear::{fit_least_squares, LeastSquaresFit, LeastSquaresOptions};
+use crate::inference::AnalysisInference;
 use crate::output::Staged;
 use crate::plan::{self, Analysis, LoadedPlan, ModelSpec, Plan};
 use crate::provenance::lock::{self, LoadedLock};
@@ -272,16 +271,22 @@ fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &
                 plan::Direction::Better => "better",
                 plan::Direction::Worse => "worse",
             },
+            event: analysis.endpoint.event.and_then(|event| match &endpoint_variable.kind {
+                plan::VariableKind::Factor { levels: Some(levels) } => levels.get(event).cloned(),
+                _ => None,
+            }),
         },
-        model: match analysis.model {
-            ModelSpec::Linear => ModelInfo { family: "linear", method: "least squares (pivoted Householder QR with iterative refinement)" },
-        },
+        model: ModelInfo { family: analysis.model.family_name(), description: String::new() },
         covariates: analysis.covariates.iter().map(|&index| variable_info(index)).collect(),
         strata: analysis.strata.iter().map(|&index| variable_info(index)).collect(),
         confidence_level: analysis.confidence_level,
         in_population_per_arm: design.in_population.clone(),
         analysed_per_arm: design.analysed_per_arm.clone(),
-        exclusions: design.exclusions.iter().map(|exclusion| ExclusionInfo { missing: exclusion.variable.clone(), missing_label: label_of(&exclusion.variable), per_arm: exclusion.per_arm.clone() }).collect(),
+        exclusions: design
+            .exclusions
+            .iter()
+            .map(|exclusion| ExclusionInfo { missing: exclusion.variable.clone(), missing_label: label_of(&exclusion.variable), per_arm: exclusion.per_arm.clone() })
+            .collect(),
         pooling: design
             .pooling
             .iter()
@@ -298,59 +303,67 @@ fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &
         failure: None,
         fit: None,
         coefficients: Vec::new(),
-        treatment_test: None,
+        treatment_tests: Vec::new(),
         treatment_test_failure: None,
         contrasts: Vec::new(),
         adjusted_means: Vec::new(),
+        checks: Vec::new(),
+        fallback_used: None,
     };
-    let fitted = fit_least_squares(&design.matrix, &design.response, &LeastSquaresOptions::default())
-        .map_err(|error| error.to_string())
-        .and_then(|fit| infer(design, &fit, &analysis.contrasts, analysis.confidence_level).map(|inference| (fit, inference)));
-    match fitted {
+    let inferred = match &analysis.model {
+        ModelSpec::Linear => crate::inference::linear::analyse(design, analysis),
+        ModelSpec::Generalized(spec) => crate::inference::glm::analyse(design, analysis, spec),
+        ModelSpec::Cumulative { link } => crate::inference::ordinal::analyse(design, analysis, *link),
+        ModelSpec::Multinomial { reference_category } => crate::inference::nominal::analyse(design, analysis, *reference_category),
+    };
+    match inferred {
         Err(reason) => {
-            deviations.push(Deviation { code: "FIT-FAILED", severity: "critical", analysis: Some(analysis.id.clone()), message: format!("the model could not be fitted: {reason}") });
+            deviations.push(Deviation {
+                code: "FIT-FAILED",
+                severity: "critical",
+                analysis: Some(analysis.id.clone()),
+                message: format!("the model could not be fitted: {reason}"),
+            });
             result.failure = Some(reason);
         }
-        Ok((fit, inference)) => fill_linear(&mut result, design, &fit, &inference, arms, deviations),
+        Ok(inference) => fill(&mut result, &inference, arms, deviations),
     }
     result
 }
 
-fn fill_linear(result: &mut AnalysisResult, design: &Design, fit: &LeastSquaresFit, inference: &LinearInference, arms: &[plan::Arm], deviations: &mut Vec<Deviation>) {
-    let aliased: Vec<String> = fit.aliased_columns.iter().map(|&column| design.column_names[column].clone()).collect();
+fn fill(result: &mut AnalysisResult, inference: &AnalysisInference, arms: &[plan::Arm], deviations: &mut Vec<Deviation>) {
+    let aliased = &inference.fit.aliased_columns;
     if !aliased.is_empty() {
         deviations.push(Deviation {
             code: "TERM-ALIASED",
             severity: "major",
             analysis: Some(result.id.clone()),
-            message: format!(
-                "{} design column(s) are linear combinations of earlier ones and were not estimated: {}",
-                aliased.len(),
-                aliased.join(", ")
-            ),
+            message: format!("{} design column(s) are linear combinations of earlier ones and were not estimated: {}", aliased.len(), aliased.join(", ")),
         });
     }
+    for finding in &inference.findings {
+        deviations.push(Deviation { code: finding.code, severity: finding.severity, analysis: Some(result.id.clone()), message: finding.message.clone() });
+    }
     result.status = "fitted";
-    result.fit = Some(FitSummary {
-        n_analysed: fit.n_observations,
-        n_columns: fit.n_columns,
-        rank: fit.rank,
-        residual_df: inference.residual_df,
-        residual_sd: inference.residual_sd,
-        r_squared: inference.r_squared,
-        adjusted_r_squared: inference.adjusted_r_squared,
-        refinement_steps: fit.refinement_steps,
-        aliased_columns: aliased,
-    });
+    result.model.description = inference.model_words.clone();
+    result.fit = Some(FitSummary::from(&inference.fit));
     result.coefficients = inference
         .coefficients
         .iter()
-        .map(|row| CoefficientInfo { name: row.name.clone(), term: row.term.clone(), aliased: row.estimate.is_none(), estimate: row.estimate.as_ref().map(EstimateInfo::from) })
+        .map(|row| CoefficientInfo {
+            name: row.name.clone(),
+            term: row.term.clone(),
+            category: row.category.clone(),
+            aliased: row.estimate.is_none(),
+            estimate: row.estimate.as_ref().map(EstimateInfo::from),
+        })
         .collect();
-    match &inference.treatment_test {
-        Ok(test) => result.treatment_test = Some(TestInfo { statistic_name: test.statistic_name, statistic: test.statistic, df1: test.df1, df2: test.df2, p_value: test.p_value }),
-        Err(reason) => result.treatment_test_failure = Some(reason.clone()),
-    }
+    result.treatment_tests = inference
+        .treatment_tests
+        .iter()
+        .map(|test| TestInfo { statistic_name: test.statistic_name, statistic: test.statistic, df1: test.df1, df2: test.df2, p_value: test.p_value })
+        .collect();
+    result.treatment_test_failure = inference.treatment_test_failure.clone();
     result.contrasts = inference
         .contrasts
         .iter()
@@ -358,8 +371,14 @@ fn fill_linear(result: &mut AnalysisResult, design: &Design, fit: &LeastSquaresF
             id: contrast.id.clone(),
             arm: arms[contrast.arm].code.clone(),
             versus: arms[contrast.versus].code.clone(),
-            scale: "difference",
+            category: contrast.category.clone(),
+            scale: inference.effect_scale,
             estimate: contrast.estimate.as_ref().ok().map(EstimateInfo::from),
+            ratio: match (inference.ratio_name, &contrast.ratio) {
+                (Some(name), Some(ratio)) => Some(RatioInfo { name, estimate: ratio.estimate, lower: ratio.lower, upper: ratio.upper }),
+                _ => None,
+            },
+            interval_method: contrast.interval_method,
             failure: contrast.estimate.as_ref().err().cloned(),
         })
         .collect();
@@ -368,6 +387,22 @@ fn fill_linear(result: &mut AnalysisResult, design: &Design, fit: &LeastSquaresF
         .iter()
         .map(|mean| ArmMeanInfo { arm: arms[mean.arm].code.clone(), estimate: mean.estimate.as_ref().ok().map(EstimateInfo::from), failure: mean.estimate.as_ref().err().cloned() })
         .collect();
+    result.checks = inference
+        .checks
+        .iter()
+        .map(|check| CheckInfo {
+            name: check.name.clone(),
+            rows: check
+                .rows
+                .iter()
+                .map(|row| CheckRowInfo { term: row.term.clone(), statistic_name: row.statistic_name, statistic: row.statistic, df: row.df, p_value: row.p_value })
+                .collect(),
+            failed: check.failed,
+            verdict: check.verdict.clone(),
+            details: check.details.clone(),
+        })
+        .collect();
+    result.fallback_used = inference.fallback_used.clone();
 }
 
 fn manifest(staged: &Staged) -> Result<Vec<u8>, Error> {

@@ -120,7 +120,8 @@ fn check(case: Case) {
     close(&fit["adjusted_r_squared"], &reference["adjusted_r_squared"], "adjusted R squared");
 
     // The overall treatment test: anova(reduced, full) in R.
-    let test = &analysis["treatment_test"];
+    let test = &analysis["treatment_tests"][0];
+    assert_eq!(test["statistic_name"], "F");
     close(&test["statistic"], &reference["factor_test"]["F"], "F statistic");
     close(&test["df1"], &reference["factor_test"]["df1"], "F df1");
     close(&test["df2"], &reference["factor_test"]["df2"], "F df2");

@@ -57,7 +57,13 @@ pub struct PoolingOutcome {
 pub struct Design {
     /// n × p, column-major.
     pub matrix: DMatrix<f64>,
+    /// The endpoint per analysed subject: the value (continuous, count), 1 or 0
+    /// (binary: event or not), or the category index (ordinal, nominal).
     pub response: Vec<f64>,
+    /// log(exposure) per analysed subject when the model has an exposure.
+    pub offset: Option<Vec<f64>>,
+    /// The endpoint's levels for ordinal and nominal endpoints (category indices point here).
+    pub response_levels: Vec<String>,
     pub column_names: Vec<String>,
     /// Index into `terms` for every column.
     pub column_terms: Vec<usize>,
@@ -106,7 +112,12 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
         in_population_per_arm[data.arms[row]] += 1;
     }
 
+    let exposure = match &analysis.model {
+        crate::plan::ModelSpec::Generalized(spec) => spec.exposure,
+        _ => None,
+    };
     let mut needed: Vec<usize> = vec![analysis.endpoint.variable];
+    needed.extend(exposure);
     needed.extend(&analysis.covariates);
     needed.extend(&analysis.strata);
     let mut exclusions: Vec<Exclusion> = Vec::new();
@@ -207,10 +218,33 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
     // A term with no columns (a factor with one level present) carries no information.
     let terms: Vec<Term> = terms;
 
-    let Column::Numeric(endpoint) = &data.columns[analysis.endpoint.variable] else {
-        return Err(Error::internal("endpoint column is not numeric"));
+    let (response, response_levels): (Vec<f64>, Vec<String>) = match &data.columns[analysis.endpoint.variable] {
+        Column::Numeric(values) => (analysed.iter().map(|&row| values[row].unwrap_or(0.0)).collect(), Vec::new()),
+        Column::Categorical { levels, codes } => match analysis.endpoint.event {
+            Some(event) => (analysed.iter().map(|&row| f64::from(u8::from(codes[row] == Some(event)))).collect(), levels.clone()),
+            None => (analysed.iter().map(|&row| codes[row].unwrap_or(0) as f64).collect(), levels.clone()),
+        },
     };
-    let response: Vec<f64> = analysed.iter().map(|&row| endpoint[row].unwrap_or(0.0)).collect();
+    let offset = match exposure {
+        None => None,
+        Some(variable) => {
+            let Column::Numeric(values) = &data.columns[variable] else {
+                return Err(Error::internal("exposure column is not numeric"));
+            };
+            let mut offset = Vec::with_capacity(analysed.len());
+            for &row in &analysed {
+                let value = values[row].unwrap_or(0.0);
+                if !(value > 0.0) {
+                    return Err(fail(format!(
+                        "subject \"{}\" has exposure {} = {value}; an exposure must be positive",
+                        data.subject_ids[row], plan.variables[variable].name
+                    )));
+                }
+                offset.push(libm::log(value));
+            }
+            Some(offset)
+        }
+    };
     let mut matrix = DMatrix::zeros(n, columns.len());
     for (index, column) in columns.iter().enumerate() {
         matrix.set_column(index, &nalgebra::DVector::from_column_slice(column));
@@ -219,6 +253,8 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
     Ok(Design {
         matrix,
         response,
+        offset,
+        response_levels,
         column_names,
         column_terms,
         terms,

@@ -2,28 +2,45 @@
 //! treatment, contrasts and adjusted means, all with the residual degrees of
 //! freedom as reference.
 
-use super::distributions::{f_upper_p, t_quantile, t_two_sided_p};
-use super::{bilinear, ArmMean, CoefficientRow, ContrastResult, Estimate, JointTest};
+use super::distributions::f_upper_p;
+use super::{bilinear, contrast_vector, wald_estimate, AnalysisInference, ArmMean, CoefficientRow, ContrastResult, FitStatistics, JointTest};
 use crate::design::Design;
-use crate::models::linear::LeastSquaresFit;
+use crate::models::linear::{fit_least_squares, LeastSquaresFit, LeastSquaresOptions};
 use crate::plan::Contrast;
 use nalgebra::DMatrix;
 
-/// Everything inferred from one linear fit.
-#[derive(Debug, Clone, PartialEq)]
-pub struct LinearInference {
-    pub residual_sd: f64,
-    pub residual_df: usize,
-    pub r_squared: Option<f64>,
-    pub adjusted_r_squared: Option<f64>,
-    pub coefficients: Vec<CoefficientRow>,
-    pub treatment_test: Result<JointTest, String>,
-    pub contrasts: Vec<ContrastResult>,
-    pub adjusted_means: Vec<ArmMean>,
+/// Fit the planned linear model to `design` and infer from it.
+pub fn analyse(design: &Design, analysis: &crate::plan::Analysis) -> Result<AnalysisInference, String> {
+    let fit = fit_least_squares(&design.matrix, &design.response, &LeastSquaresOptions::default()).map_err(|error| error.to_string())?;
+    let mut inference = infer(design, &fit, &analysis.contrasts, analysis.confidence_level)?;
+    if analysis.checks.contains(&crate::plan::Check::TreatmentByStratum) {
+        let name = "Treatment-by-stratum interaction (supportive)".to_string();
+        let (extended, added) = super::with_interactions(design);
+        let outcome = if added == 0 {
+            Err("no interaction columns could be formed".to_string())
+        } else {
+            fit_least_squares(&extended, &design.response, &LeastSquaresOptions::default()).map_err(|error| error.to_string()).and_then(|bigger| {
+                let df1 = bigger.rank.saturating_sub(fit.rank);
+                let df2 = bigger.residual_df;
+                if df1 == 0 || df2 == 0 || bigger.residual_sum_of_squares <= 0.0 {
+                    return Err("the interaction model leaves no degrees of freedom to test".to_string());
+                }
+                let statistic = ((fit.residual_sum_of_squares - bigger.residual_sum_of_squares) / df1 as f64) / (bigger.residual_sum_of_squares / df2 as f64);
+                let p_value = f_upper_p(statistic.max(0.0), df1 as f64, df2 as f64).ok_or_else(|| "the F p-value could not be computed".to_string())?;
+                Ok(JointTest { statistic_name: "F", statistic: statistic.max(0.0), df1: df1 as f64, df2: Some(df2 as f64), p_value })
+            })
+        };
+        let check = super::heterogeneity_outcome(name, outcome, analysis.check_level);
+        if check.failed {
+            inference.findings.push(super::Finding { code: "CHECK-FAILED", severity: "minor", message: format!("{}: {}", check.name, check.verdict) });
+        }
+        inference.checks.push(check);
+    }
+    Ok(inference)
 }
 
 /// Infer from `fit` of `design`; intervals at `confidence_level` (two-sided).
-pub fn infer(design: &Design, fit: &LeastSquaresFit, contrasts: &[Contrast], confidence_level: f64) -> Result<LinearInference, String> {
+pub fn infer(design: &Design, fit: &LeastSquaresFit, contrasts: &[Contrast], confidence_level: f64) -> Result<AnalysisInference, String> {
     let residual_df = fit.residual_df;
     let residual_sd = fit
         .residual_standard_deviation()
@@ -32,32 +49,16 @@ pub fn infer(design: &Design, fit: &LeastSquaresFit, contrasts: &[Contrast], con
         return Err("the model fits the data exactly (residual SD is zero); standard errors are undefined".to_string());
     }
     let df = residual_df as f64;
-    let critical = t_quantile(0.5 + confidence_level / 2.0, df).ok_or_else(|| "the t quantile could not be computed".to_string())?;
     let variance = residual_sd * residual_sd;
     let covariance: DMatrix<f64> = &fit.unscaled_covariance * variance;
-
-    let estimate_from = |value: f64, standard_error: f64| -> Result<Estimate, String> {
-        if !(standard_error > 0.0 && standard_error.is_finite() && value.is_finite()) {
-            return Err("its standard error is zero or undefined".to_string());
-        }
-        let statistic = value / standard_error;
-        let p_value = t_two_sided_p(statistic, df).ok_or_else(|| "its p-value could not be computed".to_string())?;
-        Ok(Estimate {
-            value,
-            standard_error,
-            statistic,
-            df: Some(df),
-            p_value,
-            lower: value - critical * standard_error,
-            upper: value + critical * standard_error,
-        })
-    };
+    let aliased: Vec<bool> = fit.coefficients.iter().map(Option::is_none).collect();
 
     let coefficients = (0..design.column_names.len())
         .map(|column| CoefficientRow {
             name: design.column_names[column].clone(),
             term: design.terms[design.column_terms[column]].name.clone(),
-            estimate: fit.coefficients[column].and_then(|value| estimate_from(value, covariance[(column, column)].sqrt()).ok()),
+            category: None,
+            estimate: fit.coefficients[column].and_then(|value| wald_estimate(value, covariance[(column, column)].sqrt(), Some(df), confidence_level).ok()),
         })
         .collect();
 
@@ -67,22 +68,22 @@ pub fn infer(design: &Design, fit: &LeastSquaresFit, contrasts: &[Contrast], con
     let contrast_results = contrasts
         .iter()
         .map(|contrast| {
-            let estimate = contrast_vector(design, fit, contrast.arm, contrast.versus).and_then(|weights| {
+            let estimate = contrast_vector(design, &aliased, contrast.arm, contrast.versus).and_then(|weights| {
                 let value: f64 = weights.iter().zip(&beta).map(|(w, b)| w * b).sum();
-                estimate_from(value, bilinear(&weights, &covariance, &weights).sqrt())
+                wald_estimate(value, bilinear(&weights, &covariance, &weights).sqrt(), Some(df), confidence_level)
             });
-            ContrastResult { id: contrast.id.clone(), arm: contrast.arm, versus: contrast.versus, estimate }
+            ContrastResult { id: contrast.id.clone(), arm: contrast.arm, versus: contrast.versus, category: None, estimate, ratio: None, interval_method: "Wald" }
         })
         .collect();
 
     let adjusted_means = (0..design.treatment_columns.len())
         .map(|arm| {
-            let estimate = if design.treatment_columns[arm].is_some_and(|column| fit.coefficients[column].is_none()) {
+            let estimate = if design.treatment_columns[arm].is_some_and(|column| aliased[column]) {
                 Err("its treatment indicator is aliased".to_string())
             } else {
                 let weights = averaged_row(design, arm);
                 let value: f64 = weights.iter().zip(&beta).map(|(w, b)| w * b).sum();
-                estimate_from(value, bilinear(&weights, &covariance, &weights).sqrt())
+                wald_estimate(value, bilinear(&weights, &covariance, &weights).sqrt(), Some(df), confidence_level)
             };
             ArmMean { arm, estimate }
         })
@@ -91,36 +92,42 @@ pub fn infer(design: &Design, fit: &LeastSquaresFit, contrasts: &[Contrast], con
     let r_squared = fit.r_squared(&design.response, true);
     let n = fit.n_observations as f64;
     let adjusted_r_squared = r_squared.map(|r2| 1.0 - (1.0 - r2) * (n - 1.0) / df);
-    Ok(LinearInference {
-        residual_sd,
-        residual_df,
-        r_squared,
-        adjusted_r_squared,
+    let (treatment_tests, treatment_test_failure) = match treatment_test {
+        Ok(test) => (vec![test], None),
+        Err(reason) => (Vec::new(), Some(reason)),
+    };
+    Ok(AnalysisInference {
+        model_words: "A linear model (analysis of covariance) was fitted by least squares".to_string(),
+        fit: FitStatistics {
+            n_analysed: fit.n_observations,
+            n_parameters: fit.n_columns,
+            rank: fit.rank,
+            stop_reason: "exact solution".to_string(),
+            converged: true,
+            refinement_steps: Some(fit.refinement_steps),
+            residual_df: Some(residual_df),
+            residual_sd: Some(residual_sd),
+            r_squared,
+            adjusted_r_squared,
+            aliased_columns: fit.aliased_columns.iter().map(|&column| design.column_names[column].clone()).collect(),
+            ..FitStatistics::default()
+        },
         coefficients,
-        treatment_test,
+        treatment_tests,
+        treatment_test_failure,
         contrasts: contrast_results,
+        effect_scale: "difference",
+        ratio_name: None,
         adjusted_means,
+        checks: Vec::new(),
+        findings: Vec::new(),
+        fallback_used: None,
     })
-}
-
-/// L for "arm minus versus": +1 on the arm's indicator, −1 on the other's (the
-/// reference arm has no indicator).
-fn contrast_vector(design: &Design, fit: &LeastSquaresFit, arm: usize, versus: usize) -> Result<Vec<f64>, String> {
-    let mut weights = vec![0.0; design.column_names.len()];
-    for (index, sign) in [(arm, 1.0), (versus, -1.0)] {
-        if let Some(column) = design.treatment_columns[index] {
-            if fit.coefficients[column].is_none() {
-                return Err(format!("the indicator of \"{}\" is aliased with other terms", design.column_names[column]));
-            }
-            weights[column] += sign;
-        }
-    }
-    Ok(weights)
 }
 
 /// The design row averaged over all analysed subjects with the treatment set
 /// to `arm` for everyone.
-fn averaged_row(design: &Design, arm: usize) -> Vec<f64> {
+pub(crate) fn averaged_row(design: &Design, arm: usize) -> Vec<f64> {
     let n = design.n_rows() as f64;
     (0..design.column_names.len())
         .map(|column| {
@@ -138,16 +145,9 @@ fn averaged_row(design: &Design, arm: usize) -> Vec<f64> {
 /// linear model.
 fn treatment_f_test(design: &Design, fit: &LeastSquaresFit, beta: &[f64], covariance: &DMatrix<f64>, df: f64) -> Result<JointTest, String> {
     let columns: Vec<usize> = design.treatment_columns.iter().flatten().copied().filter(|&column| fit.coefficients[column].is_some()).collect();
-    if columns.is_empty() {
-        return Err("every treatment indicator is aliased".to_string());
-    }
-    let q = columns.len();
-    let block = DMatrix::from_fn(q, q, |i, j| covariance[(columns[i], columns[j])]);
-    let values = nalgebra::DVector::from_iterator(q, columns.iter().map(|&column| beta[column]));
-    let cholesky = block.cholesky().ok_or_else(|| "the covariance of the treatment coefficients is singular".to_string())?;
-    let solved = cholesky.solve(&values);
-    let wald = values.dot(&solved);
-    let statistic = wald / q as f64;
-    let p_value = f_upper_p(statistic, q as f64, df).ok_or_else(|| "the F p-value could not be computed".to_string())?;
-    Ok(JointTest { statistic_name: "F", statistic, df1: q as f64, df2: Some(df), p_value })
+    let wald = super::wald_chi_square(beta, covariance, &columns)?;
+    let q = wald.df1;
+    let statistic = wald.statistic / q;
+    let p_value = f_upper_p(statistic, q, df).ok_or_else(|| "the F p-value could not be computed".to_string())?;
+    Ok(JointTest { statistic_name: "F", statistic, df1: q, df2: Some(df), p_value })
 }

@@ -192,6 +192,11 @@ pub struct Analysis {
     pub contrasts: Vec<Contrast>,
     /// Two-sided confidence level of every interval in this analysis.
     pub confidence_level: f64,
+    pub fallbacks: Vec<Fallback>,
+    pub checks: Vec<Check>,
+    /// Level at which a check's p-value counts as a failed assumption.
+    pub check_level: f64,
+    pub supportive: Vec<Supportive>,
     /// Where the analysis is written in the plan, for errors found later
     /// (an arm with no analysed subjects is reported at its analysis).
     pub origin: Location,
@@ -226,17 +231,32 @@ pub struct Endpoint {
     pub variable: usize,
     pub kind: EndpointKind,
     pub higher_is: Direction,
+    /// Binary endpoints: the index of the level that counts as the event.
+    pub event: Option<usize>,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum EndpointKind {
+    /// A real-valued measurement (linear or Gamma model).
     Continuous,
+    /// Event or no event: a two-level factor and the level that counts as the event.
+    Binary,
+    /// A whole number of events, possibly over a subject-specific exposure.
+    Count,
+    /// Ordered categories.
+    Ordinal,
+    /// Unordered categories.
+    Nominal,
 }
 
 impl EndpointKind {
     pub fn name(self) -> &'static str {
         match self {
             EndpointKind::Continuous => "continuous",
+            EndpointKind::Binary => "binary",
+            EndpointKind::Count => "count",
+            EndpointKind::Ordinal => "ordinal",
+            EndpointKind::Nominal => "nominal",
         }
     }
 }
@@ -249,10 +269,91 @@ pub enum Direction {
     Worse,
 }
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[derive(Debug, Clone, PartialEq)]
 pub enum ModelSpec {
     /// Normal linear model fitted by least squares (ANCOVA when covariates are present).
     Linear,
+    /// A generalised linear model fitted by IRLS.
+    Generalized(GlmSpec),
+    /// A cumulative link model for an ordinal endpoint: g(P(Y ≤ j)) = θⱼ − xᵀβ.
+    Cumulative { link: crate::models::ordinal::CumulativeLink },
+    /// Baseline-category logit for a nominal endpoint; `reference_category` indexes the endpoint's levels.
+    Multinomial { reference_category: usize },
+}
+
+impl ModelSpec {
+    /// The family's name as written in the plan.
+    pub fn family_name(&self) -> &'static str {
+        match self {
+            ModelSpec::Linear => "linear",
+            ModelSpec::Generalized(spec) => spec.family.name(),
+            ModelSpec::Cumulative { .. } => "cumulative",
+            ModelSpec::Multinomial { .. } => "multinomial",
+        }
+    }
+}
+
+/// The GLM families a plan can name.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum GlmFamily {
+    Binomial,
+    Poisson,
+    NegativeBinomial,
+    Gamma,
+}
+
+impl GlmFamily {
+    pub fn name(self) -> &'static str {
+        match self {
+            GlmFamily::Binomial => "binomial",
+            GlmFamily::Poisson => "poisson",
+            GlmFamily::NegativeBinomial => "negative-binomial",
+            GlmFamily::Gamma => "gamma",
+        }
+    }
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct GlmSpec {
+    pub family: GlmFamily,
+    pub link: crate::models::glm::Link,
+    /// Index into `Plan::variables` of the exposure (its log enters as an offset).
+    pub exposure: Option<usize>,
+    pub method: crate::models::glm::Method,
+    /// White's HC0 sandwich standard errors instead of model-based ones.
+    pub sandwich: bool,
+    /// Profile-likelihood confidence intervals for treatment contrasts against the reference.
+    pub profile_intervals: bool,
+}
+
+/// A pre-specified alternative used when its condition occurs; using it is a
+/// deviation of the mildest kind, planned but reported.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Fallback {
+    /// Binomial logit: refit by Firth's penalised likelihood when separation is detected.
+    FirthOnSeparation,
+    /// Poisson: refit as negative binomial when Pearson χ²/df exceeds the threshold.
+    NegativeBinomialAbove(f64),
+    /// Ordinal: merge an outcome category that is empty in the analysed subjects with its
+    /// neighbour (the next higher one, or the next lower one for the top category).
+    MergeEmptyCategory,
+}
+
+/// Supportive checks of the model's assumptions, reported beside the planned model.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Check {
+    /// Cumulative logit only: the proportional-odds assumption, per term and overall.
+    ProportionalOdds,
+    /// Treatment-by-stratum interaction added to the planned model (needs strata).
+    TreatmentByStratum,
+}
+
+/// Supportive analyses run beside the planned model.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Supportive {
+    /// Stratified Cochran–Mantel–Haenszel tests of treatment × ordinal outcome by the first stratum;
+    /// column scores as planned (default 1, 2, …).
+    MantelHaenszel { scores: Option<Vec<f64>> },
 }
 
 /// Strata with fewer than `below` analysed subjects are merged into one level named `into`.

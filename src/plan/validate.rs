@@ -787,6 +787,10 @@ const ANALYSIS_KEYS: &[&str] = &[
     "pool-small-strata",
     "contrasts",
     "confidence",
+    "fallbacks",
+    "checks",
+    "check-level",
+    "supportive",
 ];
 
 fn read_analyses(
@@ -849,15 +853,7 @@ fn read_analysis(
     let population = fields
         .get("population")
         .and_then(|value| reader.reference(value, &fields.child("population"), "population", &population_names));
-    let model = fields.get("model").and_then(|value| read_model(reader, value, &fields.child("model")));
-    if let (Some(endpoint), Some(model), Some(model_node)) = (&endpoint, &model, fields.get("model")) {
-        let fits = match model {
-            ModelSpec::Linear => endpoint.kind == EndpointKind::Continuous,
-        };
-        if !fits {
-            reader.report(ErrorKind::PlanSchema, model_node, &fields.child("model"), format!("this model does not fit a {} endpoint", endpoint.kind.name()));
-        }
-    }
+    let model = fields.get("model").and_then(|value| read_model(reader, value, &fields.child("model"), endpoint.as_ref(), variables));
     let covariates = read_terms(reader, fields.get("covariates"), &fields.child("covariates"), variables, &variable_names, false);
     let strata = read_terms(reader, fields.get("strata"), &fields.child("strata"), variables, &variable_names, true);
     if let (Some(covariates), Some(strata)) = (&covariates, &strata) {
@@ -908,6 +904,33 @@ fn read_analysis(
             }
         }
     };
+    let has_strata = strata.as_ref().is_some_and(|strata| !strata.is_empty());
+    let fallbacks = match (fields.get("fallbacks"), &model) {
+        (None, _) => Some(Vec::new()),
+        (Some(value), Some(model)) => read_fallbacks(reader, value, &fields.child("fallbacks"), model),
+        (Some(_), None) => None,
+    };
+    let checks = match (fields.get("checks"), &model) {
+        (None, _) => Some(Vec::new()),
+        (Some(value), Some(model)) => read_checks(reader, value, &fields.child("checks"), model, has_strata),
+        (Some(_), None) => None,
+    };
+    let check_level = match fields.get("check-level") {
+        None => Some(0.05),
+        Some(value) => match reader.number(value, &fields.child("check-level")) {
+            Some(level) if level > 0.0 && level < 0.5 => Some(level),
+            Some(level) => {
+                reader.report(ErrorKind::PlanSchema, value, &fields.child("check-level"), format!("a check level lies between 0 and 0.5; found {level}"));
+                None
+            }
+            None => None,
+        },
+    };
+    let supportive = match (fields.get("supportive"), &model, &endpoint) {
+        (None, _, _) => Some(Vec::new()),
+        (Some(value), Some(model), Some(endpoint)) => read_supportive(reader, value, &fields.child("supportive"), model, endpoint, variables, has_strata),
+        _ => None,
+    };
     let id = id?;
     Some(Analysis {
         title: title.unwrap_or_else(|| id.clone()),
@@ -921,39 +944,389 @@ fn read_analysis(
         pool_small_strata: pool_small_strata?,
         contrasts: contrasts?,
         confidence_level: confidence_level?,
+        fallbacks: fallbacks?,
+        checks: checks?,
+        check_level: check_level?,
+        supportive: supportive?,
         origin: reader.location(node, path),
     })
 }
 
 fn read_endpoint(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &[Variable]) -> Option<Endpoint> {
-    let fields = reader.mapping(node, path, &["column", "kind", "higher-is"], &["column", "kind", "higher-is"])?;
+    let fields = reader.mapping(node, path, &["column", "kind", "higher-is", "event"], &["column", "kind", "higher-is"])?;
     let names: Vec<&str> = variables.iter().map(|variable| variable.name.as_str()).collect();
     let variable = fields.get("column").and_then(|value| reader.reference(value, &fields.child("column"), "declared variable", &names));
-    let kind = fields.get("kind").and_then(|value| reader.choice(value, &fields.child("kind"), &[("continuous", EndpointKind::Continuous)]));
+    let kind = fields.get("kind").and_then(|value| {
+        reader.choice(
+            value,
+            &fields.child("kind"),
+            &[
+                ("continuous", EndpointKind::Continuous),
+                ("binary", EndpointKind::Binary),
+                ("count", EndpointKind::Count),
+                ("ordinal", EndpointKind::Ordinal),
+                ("nominal", EndpointKind::Nominal),
+            ],
+        )
+    });
     let higher_is = fields
         .get("higher-is")
         .and_then(|value| reader.choice(value, &fields.child("higher-is"), &[("better", Direction::Better), ("worse", Direction::Worse)]));
-    if let (Some(variable), Some(kind), Some(kind_node)) = (variable, kind, fields.get("kind")) {
-        let declared = &variables[variable].kind;
-        let fits = match kind {
-            EndpointKind::Continuous => matches!(declared, VariableKind::Numeric | VariableKind::Count),
+    let (Some(variable), Some(kind), Some(kind_node)) = (variable, kind, fields.get("kind")) else {
+        return None;
+    };
+    let declared = &variables[variable].kind;
+    let name = &variables[variable].name;
+    let requirement = match kind {
+        EndpointKind::Continuous => (!matches!(declared, VariableKind::Numeric | VariableKind::Count)).then_some("a numeric or count variable"),
+        EndpointKind::Binary => (!matches!(declared, VariableKind::Factor { levels: Some(levels) } if levels.len() == 2))
+            .then_some("a factor variable with exactly two declared levels"),
+        EndpointKind::Count => (!matches!(declared, VariableKind::Count)).then_some("a count variable"),
+        EndpointKind::Ordinal => (!matches!(declared, VariableKind::Ordinal { levels } if levels.len() >= 2)).then_some("an ordinal variable with at least two levels"),
+        EndpointKind::Nominal => (!matches!(declared, VariableKind::Factor { levels: Some(levels) } if levels.len() >= 2))
+            .then_some("a factor variable with declared levels"),
+    };
+    if let Some(requirement) = requirement {
+        reader.report(
+            ErrorKind::PlanSchema,
+            kind_node,
+            &fields.child("kind"),
+            format!("a {} endpoint needs {requirement}; \"{name}\" is declared {}", kind.name(), declared.name()),
+        );
+        return None;
+    }
+    let event = match (kind, fields.get("event")) {
+        (EndpointKind::Binary, Some(value)) => {
+            let VariableKind::Factor { levels: Some(levels) } = declared else { return None };
+            let known: Vec<&str> = levels.iter().map(String::as_str).collect();
+            Some(reader.reference(value, &fields.child("event"), &format!("level of \"{name}\""), &known)?)
+        }
+        (EndpointKind::Binary, None) => {
+            reader.report(ErrorKind::PlanSchema, node, path, "a binary endpoint needs \"event\": the level that counts as the event".to_string());
+            return None;
+        }
+        (_, Some(value)) => {
+            reader.report(ErrorKind::PlanSchema, value, &fields.child("event"), "\"event\" belongs to binary endpoints only".to_string());
+            return None;
+        }
+        (_, None) => None,
+    };
+    Some(Endpoint { variable, kind, higher_is: higher_is?, event })
+}
+
+fn read_model(reader: &mut Reader<'_>, node: &Node, path: &str, endpoint: Option<&Endpoint>, variables: &[Variable]) -> Option<ModelSpec> {
+    use crate::models::glm::{Link, Method};
+    use crate::models::ordinal::CumulativeLink;
+    let fields = reader.mapping(
+        node,
+        path,
+        &["family", "link", "exposure", "method", "standard-errors", "intervals", "reference-category"],
+        &["family"],
+    )?;
+    #[derive(Clone, Copy, PartialEq)]
+    enum Family {
+        Linear,
+        Glm(GlmFamily),
+        Cumulative,
+        Multinomial,
+    }
+    let family_node = fields.get("family")?;
+    let family = reader.choice(
+        family_node,
+        &fields.child("family"),
+        &[
+            ("linear", Family::Linear),
+            ("binomial", Family::Glm(GlmFamily::Binomial)),
+            ("poisson", Family::Glm(GlmFamily::Poisson)),
+            ("negative-binomial", Family::Glm(GlmFamily::NegativeBinomial)),
+            ("gamma", Family::Glm(GlmFamily::Gamma)),
+            ("cumulative", Family::Cumulative),
+            ("multinomial", Family::Multinomial),
+        ],
+    )?;
+    let family_name = family_node.as_scalar().map(|(text, _)| text.to_string()).unwrap_or_default();
+    // Which keys each family takes; anything else is an error at the key.
+    let allowed: &[&str] = match family {
+        Family::Linear => &["family"],
+        Family::Glm(GlmFamily::Binomial) => &["family", "link", "method", "standard-errors", "intervals"],
+        Family::Glm(GlmFamily::Poisson | GlmFamily::NegativeBinomial) => &["family", "link", "exposure", "standard-errors", "intervals"],
+        Family::Glm(GlmFamily::Gamma) => &["family", "link", "standard-errors", "intervals"],
+        Family::Cumulative => &["family", "link"],
+        Family::Multinomial => &["family", "reference-category"],
+    };
+    let mut complete = true;
+    for (key, value) in &fields.pairs {
+        if !allowed.contains(key) {
+            reader.report(ErrorKind::PlanSchema, value, &fields.child(key), format!("\"{key}\" does not apply to the {family_name} family"));
+            complete = false;
+        }
+    }
+    if let Some(endpoint) = endpoint {
+        let fits = match family {
+            Family::Linear => endpoint.kind == EndpointKind::Continuous,
+            Family::Glm(GlmFamily::Binomial) => endpoint.kind == EndpointKind::Binary,
+            Family::Glm(GlmFamily::Poisson | GlmFamily::NegativeBinomial) => endpoint.kind == EndpointKind::Count,
+            Family::Glm(GlmFamily::Gamma) => endpoint.kind == EndpointKind::Continuous,
+            Family::Cumulative => endpoint.kind == EndpointKind::Ordinal,
+            Family::Multinomial => endpoint.kind == EndpointKind::Nominal,
         };
         if !fits {
             reader.report(
                 ErrorKind::PlanSchema,
-                kind_node,
-                &fields.child("kind"),
-                format!("a {} endpoint needs a numeric variable; \"{}\" is declared {}", kind.name(), variables[variable].name, declared.name()),
+                family_node,
+                &fields.child("family"),
+                format!("the {family_name} family does not fit a {} endpoint", endpoint.kind.name()),
             );
             return None;
         }
     }
-    Some(Endpoint { variable: variable?, kind: kind?, higher_is: higher_is? })
+    if !complete {
+        return None;
+    }
+    match family {
+        Family::Linear => Some(ModelSpec::Linear),
+        Family::Cumulative => {
+            let link = match fields.get("link") {
+                None => CumulativeLink::Logit,
+                Some(value) => reader.choice(
+                    value,
+                    &fields.child("link"),
+                    &[("logit", CumulativeLink::Logit), ("probit", CumulativeLink::Probit), ("cloglog", CumulativeLink::ComplementaryLogLog)],
+                )?,
+            };
+            Some(ModelSpec::Cumulative { link })
+        }
+        Family::Multinomial => {
+            let endpoint = endpoint?;
+            let VariableKind::Factor { levels: Some(levels) } = &variables[endpoint.variable].kind else { return None };
+            let known: Vec<&str> = levels.iter().map(String::as_str).collect();
+            let reference_category = match fields.get("reference-category") {
+                Some(value) => reader.reference(value, &fields.child("reference-category"), "outcome category", &known)?,
+                None => {
+                    reader.report(
+                        ErrorKind::PlanSchema,
+                        node,
+                        path,
+                        "a multinomial model needs \"reference-category\": the outcome level the others are compared with".to_string(),
+                    );
+                    return None;
+                }
+            };
+            Some(ModelSpec::Multinomial { reference_category })
+        }
+        Family::Glm(glm_family) => {
+            let links: &[(&str, Link)] = match glm_family {
+                GlmFamily::Binomial => &[("logit", Link::Logit), ("probit", Link::Probit), ("cloglog", Link::CLogLog)],
+                GlmFamily::Poisson | GlmFamily::NegativeBinomial => &[("log", Link::Log)],
+                GlmFamily::Gamma => &[("log", Link::Log), ("inverse", Link::Inverse)],
+            };
+            let link = match fields.get("link") {
+                None => links[0].1,
+                Some(value) => reader.choice(value, &fields.child("link"), links)?,
+            };
+            let names: Vec<&str> = variables.iter().map(|variable| variable.name.as_str()).collect();
+            let exposure = match fields.get("exposure") {
+                None => None,
+                Some(value) => {
+                    let index = reader.reference(value, &fields.child("exposure"), "declared variable", &names)?;
+                    if !matches!(variables[index].kind, VariableKind::Numeric | VariableKind::Count) {
+                        reader.report(
+                            ErrorKind::PlanSchema,
+                            value,
+                            &fields.child("exposure"),
+                            format!("an exposure must be a numeric variable; \"{}\" is {}", variables[index].name, variables[index].kind.name()),
+                        );
+                        return None;
+                    }
+                    Some(index)
+                }
+            };
+            let method = match fields.get("method") {
+                None => Method::MaximumLikelihood,
+                Some(value) => reader.choice(value, &fields.child("method"), &[("maximum-likelihood", Method::MaximumLikelihood), ("firth", Method::Firth)])?,
+            };
+            if method == Method::Firth && link != Link::Logit {
+                reader.report(ErrorKind::PlanSchema, fields.get("method")?, &fields.child("method"), "Firth's penalised likelihood is available for the logit link only".to_string());
+                return None;
+            }
+            let sandwich = match fields.get("standard-errors") {
+                None => false,
+                Some(value) => reader.choice(value, &fields.child("standard-errors"), &[("model-based", false), ("sandwich", true)])?,
+            };
+            let profile_intervals = match fields.get("intervals") {
+                None => false,
+                Some(value) => reader.choice(value, &fields.child("intervals"), &[("wald", false), ("profile", true)])?,
+            };
+            if profile_intervals && method == Method::Firth {
+                reader.report(
+                    ErrorKind::PlanSchema,
+                    fields.get("intervals")?,
+                    &fields.child("intervals"),
+                    "profile-likelihood intervals are not available with Firth's method; use wald".to_string(),
+                );
+                return None;
+            }
+            Some(ModelSpec::Generalized(GlmSpec { family: glm_family, link, exposure, method, sandwich, profile_intervals }))
+        }
+    }
 }
 
-fn read_model(reader: &mut Reader<'_>, node: &Node, path: &str) -> Option<ModelSpec> {
-    let fields = reader.mapping(node, path, &["family"], &["family"])?;
-    fields.get("family").and_then(|value| reader.choice(value, &fields.child("family"), &[("linear", ModelSpec::Linear)]))
+fn read_fallbacks(reader: &mut Reader<'_>, node: &Node, path: &str, model: &ModelSpec) -> Option<Vec<Fallback>> {
+    use crate::models::glm::{Link, Method};
+    let items = reader.list(node, path)?;
+    let mut fallbacks = Vec::new();
+    let mut complete = true;
+    for (index, item) in items.iter().enumerate() {
+        let item_path = format!("{path}[{index}]");
+        let Some(fields) = reader.mapping(item, &item_path, &["when", "use", "above"], &["when", "use"]) else {
+            complete = false;
+            continue;
+        };
+        let when = fields.get("when").and_then(|value| reader.choice(value, &fields.child("when"), &[("separation", 0), ("overdispersion", 1), ("empty-category", 2)]));
+        let remedy = fields
+            .get("use")
+            .and_then(|value| reader.choice(value, &fields.child("use"), &[("firth", 0), ("negative-binomial", 1), ("merge-with-neighbour", 2)]));
+        let (Some(when), Some(remedy)) = (when, remedy) else {
+            complete = false;
+            continue;
+        };
+        if let (Some(above), false) = (fields.get("above"), when == 1) {
+            reader.report(ErrorKind::PlanSchema, above, &fields.child("above"), "\"above\" belongs to the overdispersion fallback only".to_string());
+            complete = false;
+            continue;
+        }
+        let fallback = match (when, remedy) {
+            (0, 0) => match model {
+                ModelSpec::Generalized(GlmSpec { family: GlmFamily::Binomial, link: Link::Logit, method: Method::MaximumLikelihood, .. }) => Some(Fallback::FirthOnSeparation),
+                _ => {
+                    reader.report(ErrorKind::PlanSchema, item, &item_path, "the Firth fallback applies to a binomial logit model fitted by maximum likelihood".to_string());
+                    None
+                }
+            },
+            (1, 1) => match (model, fields.get("above")) {
+                (ModelSpec::Generalized(GlmSpec { family: GlmFamily::Poisson, .. }), Some(value)) => match reader.number(value, &fields.child("above")) {
+                    Some(threshold) if threshold >= 1.0 => Some(Fallback::NegativeBinomialAbove(threshold)),
+                    Some(threshold) => {
+                        reader.report(
+                            ErrorKind::PlanSchema,
+                            value,
+                            &fields.child("above"),
+                            format!("an overdispersion threshold (Pearson chi-square / df) is at least 1; found {threshold}"),
+                        );
+                        None
+                    }
+                    None => None,
+                },
+                (ModelSpec::Generalized(GlmSpec { family: GlmFamily::Poisson, .. }), None) => {
+                    reader.report(ErrorKind::PlanSchema, item, &item_path, "the negative-binomial fallback needs \"above\": the Pearson chi-square / df that triggers it".to_string());
+                    None
+                }
+                _ => {
+                    reader.report(ErrorKind::PlanSchema, item, &item_path, "the negative-binomial fallback applies to a Poisson model".to_string());
+                    None
+                }
+            },
+            (2, 2) => match model {
+                ModelSpec::Cumulative { .. } => Some(Fallback::MergeEmptyCategory),
+                _ => {
+                    reader.report(ErrorKind::PlanSchema, item, &item_path, "merging an empty category applies to a cumulative (ordinal) model".to_string());
+                    None
+                }
+            },
+            _ => {
+                reader.report(
+                    ErrorKind::PlanSchema,
+                    item,
+                    &item_path,
+                    "this remedy does not answer this condition; plannable pairs are separation → firth, overdispersion → negative-binomial, empty-category → merge-with-neighbour"
+                        .to_string(),
+                );
+                None
+            }
+        };
+        match fallback {
+            Some(fallback) if fallbacks.contains(&fallback) => {
+                reader.report(ErrorKind::PlanSchema, item, &item_path, "this fallback is listed twice".to_string());
+                complete = false;
+            }
+            Some(fallback) => fallbacks.push(fallback),
+            None => complete = false,
+        }
+    }
+    complete.then_some(fallbacks)
+}
+
+fn read_checks(reader: &mut Reader<'_>, node: &Node, path: &str, model: &ModelSpec, has_strata: bool) -> Option<Vec<Check>> {
+    let listed = reader.text_list(node, path)?;
+    let mut checks = Vec::new();
+    let mut complete = true;
+    for (index, (_, item)) in listed.iter().enumerate() {
+        let item_path = format!("{path}[{index}]");
+        let Some(check) = reader.choice(item, &item_path, &[("proportional-odds", Check::ProportionalOdds), ("treatment-by-stratum", Check::TreatmentByStratum)]) else {
+            complete = false;
+            continue;
+        };
+        let problem = match check {
+            Check::ProportionalOdds if !matches!(model, ModelSpec::Cumulative { .. }) => Some("the proportional-odds check applies to cumulative (ordinal) models"),
+            Check::TreatmentByStratum if !has_strata => Some("the treatment-by-stratum check needs strata"),
+            _ => None,
+        };
+        match problem {
+            Some(reason) => {
+                reader.report(ErrorKind::PlanSchema, item, &item_path, reason.to_string());
+                complete = false;
+            }
+            None => checks.push(check),
+        }
+    }
+    complete.then_some(checks)
+}
+
+fn read_supportive(reader: &mut Reader<'_>, node: &Node, path: &str, model: &ModelSpec, endpoint: &Endpoint, variables: &[Variable], has_strata: bool) -> Option<Vec<Supportive>> {
+    let items = reader.list(node, path)?;
+    let mut supportive = Vec::new();
+    let mut complete = true;
+    for (index, item) in items.iter().enumerate() {
+        let item_path = format!("{path}[{index}]");
+        let Some(fields) = reader.mapping(item, &item_path, &["test", "scores"], &["test"]) else {
+            complete = false;
+            continue;
+        };
+        if fields.get("test").and_then(|value| reader.choice(value, &fields.child("test"), &[("mantel-haenszel", 0)])).is_none() {
+            complete = false;
+            continue;
+        }
+        if !matches!(model, ModelSpec::Cumulative { .. }) || !has_strata {
+            reader.report(ErrorKind::PlanSchema, item, &item_path, "the Mantel-Haenszel tests support an ordinal endpoint analysed with strata".to_string());
+            complete = false;
+            continue;
+        }
+        let scores = match fields.get("scores") {
+            None => None,
+            Some(value) => {
+                let items = reader.list(value, &fields.child("scores"))?;
+                let mut scores = Vec::new();
+                for (position, score) in items.iter().enumerate() {
+                    scores.push(reader.number(score, &format!("{}[{position}]", fields.child("scores")))?);
+                }
+                let levels = match &variables[endpoint.variable].kind {
+                    VariableKind::Ordinal { levels } => levels.len(),
+                    _ => 0,
+                };
+                if scores.len() != levels {
+                    reader.report(ErrorKind::PlanSchema, value, &fields.child("scores"), format!("give one score per outcome level ({levels}); found {}", scores.len()));
+                    return None;
+                }
+                if scores.windows(2).any(|pair| pair[1] <= pair[0]) {
+                    reader.report(ErrorKind::PlanSchema, value, &fields.child("scores"), "scores must increase with the outcome levels".to_string());
+                    return None;
+                }
+                Some(scores)
+            }
+        };
+        supportive.push(Supportive::MantelHaenszel { scores });
+    }
+    complete.then_some(supportive)
 }
 
 fn read_terms(

@@ -79,19 +79,44 @@ struct AnalysisView {
     flow: Vec<FlowRow>,
     pooling: Vec<String>,
     failure: Option<String>,
+    fallback: Option<String>,
     confidence: String,
+    effect_header: String,
+    se_header: String,
+    has_category: bool,
     effects: Vec<EffectRow>,
     effect_sentences: Vec<String>,
     overall: Option<String>,
     means: Vec<MeanRow>,
     coefficients: Vec<CoefficientRow>,
+    statistic_header: &'static str,
     fit_line: Option<String>,
+    checks: Vec<CheckView>,
     aliased: Vec<String>,
+}
+
+#[derive(Serialize)]
+struct CheckView {
+    name: String,
+    rows: Vec<CheckRowView>,
+    verdict: String,
+    failed: bool,
+    details: Vec<String>,
+}
+
+#[derive(Serialize)]
+struct CheckRowView {
+    term: String,
+    statistic_name: &'static str,
+    statistic: String,
+    df: String,
+    p_value: String,
 }
 
 #[derive(Serialize)]
 struct EffectRow {
     label: String,
+    category: String,
     estimate: String,
     standard_error: String,
     interval: String,
@@ -345,19 +370,29 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         .map(|population| population.label.clone())
         .unwrap_or_else(|| analysis.population.clone());
     let n_analysed: usize = analysis.analysed_per_arm.iter().sum();
-    let decimals = analysis.fit.as_ref().map(|fit| decimals_for_scale(fit.residual_sd)).unwrap_or(3);
+    let linear = analysis.model.family == "linear";
+    let decimals = match analysis.fit.as_ref().and_then(|fit| fit.residual_sd) {
+        Some(sd) if linear => decimals_for_scale(sd),
+        _ => 3,
+    };
     let confidence = percent(analysis.confidence_level);
+    let scale = analysis.contrasts.first().map(|contrast| contrast.scale).unwrap_or("difference");
+    let ratio_name = analysis.contrasts.iter().find_map(|contrast| contrast.ratio.as_ref().map(|ratio| ratio.name));
 
+    // Methods text.
     let mut terms = vec![format!("treatment (reference: {})", markdown_text(&reference))];
     terms.extend(analysis.covariates.iter().map(|variable| markdown_text(&variable.label)));
     terms.extend(analysis.strata.iter().map(|variable| format!("{} (stratum)", markdown_text(&variable.label))));
-    let df_text = analysis.fit.as_ref().map(|fit| format!(" on {} residual degrees of freedom", fit.residual_df)).unwrap_or_default();
     let mut methods = format!(
-        "A linear model (analysis of covariance) was fitted by least squares to {} in the {} (n = {n_analysed}), with {} as fixed effects. ",
+        "{} to {} in the {} (n = {n_analysed}), with {} as fixed effects. ",
+        markdown_text(&analysis.model.description),
         markdown_text(&analysis.endpoint.label),
         markdown_text(&population_label),
         join_words(&terms)
     );
+    if let Some(event) = &analysis.endpoint.event {
+        methods.push_str(&format!("The event is \"{}\". ", markdown_text(event)));
+    }
     for pooling in &analysis.pooling {
         methods.push_str(&format!(
             "As planned, levels of {} with fewer than {} analysed subjects were pooled into one level, \"{}\". ",
@@ -366,11 +401,21 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
             markdown_text(&pooling.into)
         ));
     }
+    let reference_distribution = match analysis.contrasts.first().and_then(|contrast| contrast.estimate.as_ref()).and_then(|estimate| estimate.df) {
+        Some(df) => format!("the t distribution on {} degrees of freedom", degrees(df)),
+        None => "the normal distribution".to_string(),
+    };
+    let exponentiated = ratio_name.map(|name| format!(", and exponentiated as {name}s")).unwrap_or_default();
+    let interval_kind = if analysis.contrasts.iter().any(|contrast| contrast.interval_method == "profile likelihood") { "profile-likelihood or Wald" } else { "Wald" };
     methods.push_str(&format!(
-        "Treatment differences are contrasts of the model coefficients with {confidence} confidence intervals from the t distribution{df_text}; \
-         the overall effect of treatment is tested with an F test. Adjusted means are the model's predictions averaged over all analysed subjects as if each had received that arm. \
-         Subjects with a missing endpoint or covariate are left out of this analysis (complete cases)."
+        "Treatment comparisons are contrasts of the model coefficients on the {scale} scale{exponentiated}, with {confidence} {interval_kind} confidence intervals and two-sided p-values from {reference_distribution}. "
     ));
+    if linear {
+        methods.push_str("The overall effect of treatment is tested with an F test. Adjusted means are the model's predictions averaged over all analysed subjects as if each had received that arm. ");
+    } else {
+        methods.push_str("The overall effect of treatment is tested with a joint Wald chi-square test and a likelihood-ratio test against the model without treatment. ");
+    }
+    methods.push_str("Subjects with a missing endpoint or covariate are left out of this analysis (complete cases).");
 
     let mut analysis_flow = vec![FlowRow {
         label: format!("In {}", markdown_text(&population_label)),
@@ -384,51 +429,77 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
             total: exclusion.per_arm.iter().sum::<usize>().to_string(),
         });
     }
-    analysis_flow.push(FlowRow {
-        label: "Analysed".to_string(),
-        cells: analysis.analysed_per_arm.iter().map(usize::to_string).collect(),
-        total: n_analysed.to_string(),
-    });
+    analysis_flow.push(FlowRow { label: "Analysed".to_string(), cells: analysis.analysed_per_arm.iter().map(usize::to_string).collect(), total: n_analysed.to_string() });
     let pooling = analysis
         .pooling
         .iter()
         .map(|pooling| {
             let levels: Vec<String> = pooling.pooled_levels.iter().map(|level| format!("{} ({})", markdown_text(&level.level), level.subjects)).collect();
-            format!(
-                "{}: {} pooled into \"{}\" ({} subjects).",
-                markdown_text(&pooling.stratum_label),
-                levels.join(", "),
-                markdown_text(&pooling.into),
-                pooling.pooled_size
-            )
+            format!("{}: {} pooled into \"{}\" ({} subjects).", markdown_text(&pooling.stratum_label), levels.join(", "), markdown_text(&pooling.into), pooling.pooled_size)
         })
         .collect();
 
+    // Treatment effects.
     let lower_is_better = analysis.endpoint.higher_is == "worse";
+    let ordered = analysis.endpoint.kind != "nominal";
     let mut effects = Vec::new();
     let mut effect_sentences = Vec::new();
     for contrast in &analysis.contrasts {
-        let label = format!("{} − {}", markdown_text(&arm_label(&contrast.arm)), markdown_text(&arm_label(&contrast.versus)));
+        let label = format!("{} vs {}", markdown_text(&arm_label(&contrast.arm)), markdown_text(&arm_label(&contrast.versus)));
+        let category = contrast.category.as_deref().map(markdown_text).unwrap_or_default();
         match (&contrast.estimate, &contrast.failure) {
             (Some(estimate), _) => {
-                effects.push(EffectRow {
-                    label: label.clone(),
-                    estimate: fixed(estimate.estimate, decimals),
-                    standard_error: fixed(estimate.standard_error, decimals),
-                    interval: interval(estimate.lower, estimate.upper, decimals),
-                    p_value: p_value(estimate.p_value),
-                });
-                let favoured = if (estimate.estimate < 0.0) == lower_is_better { arm_label(&contrast.arm) } else { arm_label(&contrast.versus) };
-                let direction = if lower_is_better { "lower values are better" } else { "higher values are better" };
-                let sentence = if estimate.estimate == 0.0 {
-                    format!("{label}: no difference in the point estimate.")
-                } else {
-                    format!("{label}: the point estimate favours {} ({direction}).", markdown_text(&favoured))
+                let row = match &contrast.ratio {
+                    Some(ratio) => {
+                        let ratio_decimals = if ratio.estimate < 0.1 { 3 } else { 2 };
+                        EffectRow {
+                            label: label.clone(),
+                            category: category.clone(),
+                            estimate: fixed(ratio.estimate, ratio_decimals),
+                            standard_error: format!("{} ({})", fixed(estimate.estimate, 3), fixed(estimate.standard_error, 3)),
+                            interval: interval(ratio.lower, ratio.upper, ratio_decimals),
+                            p_value: p_value(estimate.p_value),
+                        }
+                    }
+                    None => EffectRow {
+                        label: label.clone(),
+                        category: category.clone(),
+                        estimate: fixed(estimate.estimate, decimals),
+                        standard_error: fixed(estimate.standard_error, decimals),
+                        interval: interval(estimate.lower, estimate.upper, decimals),
+                        p_value: p_value(estimate.p_value),
+                    },
                 };
-                effect_sentences.push(sentence);
+                effects.push(row);
+                if ordered {
+                    let arm_higher = estimate.estimate > 0.0;
+                    let favoured = if arm_higher != lower_is_better { arm_label(&contrast.arm) } else { arm_label(&contrast.versus) };
+                    let direction = if lower_is_better { "lower values are better" } else { "higher values are better" };
+                    let what = match analysis.endpoint.kind {
+                        "binary" => "a higher chance of the event",
+                        "count" => "more events",
+                        "ordinal" => "higher categories",
+                        _ => "higher values",
+                    };
+                    let sentence = if estimate.estimate == 0.0 {
+                        format!("{label}: no difference in the point estimate.")
+                    } else if analysis.endpoint.kind == "continuous" {
+                        format!("{label}: the point estimate favours {} ({direction}).", markdown_text(&favoured))
+                    } else {
+                        let subject = if arm_higher { arm_label(&contrast.arm) } else { arm_label(&contrast.versus) };
+                        format!(
+                            "{label}: the point estimate gives {} {what}; as {}, it favours {}.",
+                            markdown_text(&subject),
+                            if lower_is_better { "higher values are worse" } else { "higher values are better" },
+                            markdown_text(&favoured)
+                        )
+                    };
+                    effect_sentences.push(sentence);
+                }
             }
             (None, failure) => effects.push(EffectRow {
                 label,
+                category,
                 estimate: "not estimable".to_string(),
                 standard_error: String::new(),
                 interval: failure.as_deref().map(markdown_text).unwrap_or_default(),
@@ -436,18 +507,35 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
             }),
         }
     }
-    let overall = analysis.treatment_test.as_ref().map(|test| {
-        format!(
-            "{}({}, {}) = {}, p = {}",
-            test.statistic_name,
-            degrees(test.df1),
-            test.df2.map(degrees).unwrap_or_default(),
-            statistic(test.statistic),
-            p_value(test.p_value)
-        )
-        .replace("p = <", "p <")
-    });
-    let overall = overall.or_else(|| analysis.treatment_test_failure.as_ref().map(|reason| format!("not available: {}", markdown_text(reason))));
+    let (effect_header, se_header) = match ratio_name {
+        Some(name) => (capitalise(name), format!("{} (SE)", capitalise(scale))),
+        None if linear => ("Difference".to_string(), "SE".to_string()),
+        None => (capitalise(scale), "SE".to_string()),
+    };
+    let overall_parts: Vec<String> = analysis
+        .treatment_tests
+        .iter()
+        .map(|test| {
+            let name = match test.statistic_name {
+                "F" => "F".to_string(),
+                "Wald chi-square" => "Wald χ²".to_string(),
+                _ => "likelihood-ratio χ²".to_string(),
+            };
+            let df = match test.df2 {
+                Some(df2) => format!("{}, {}", degrees(test.df1), degrees(df2)),
+                None => degrees(test.df1),
+            };
+            format!("{name}({df}) = {}, p = {}", statistic(test.statistic), p_value(test.p_value)).replace("p = <", "p <")
+        })
+        .collect();
+    let mut overall = (!overall_parts.is_empty()).then(|| overall_parts.join("; "));
+    if let Some(reason) = &analysis.treatment_test_failure {
+        let text = format!("not available: {}", markdown_text(reason));
+        overall = Some(match overall {
+            Some(tests) => format!("{tests} ({text})"),
+            None => text,
+        });
+    }
     let means = analysis
         .adjusted_means
         .iter()
@@ -472,38 +560,83 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
     let coefficients = analysis
         .coefficients
         .iter()
-        .map(|row| match &row.estimate {
-            Some(estimate) => CoefficientRow {
-                name: markdown_text(&row.name),
-                estimate: fixed(estimate.estimate, decimals.max(3)),
-                standard_error: fixed(estimate.standard_error, decimals.max(3)),
-                statistic: statistic(estimate.statistic),
-                p_value: p_value(estimate.p_value),
-                interval: interval(estimate.lower, estimate.upper, decimals.max(3)),
-            },
-            None => CoefficientRow {
-                name: markdown_text(&row.name),
-                estimate: "aliased".to_string(),
-                standard_error: String::new(),
-                statistic: String::new(),
-                p_value: String::new(),
-                interval: String::new(),
-            },
+        .map(|row| {
+            let name = match &row.category {
+                Some(category) => format!("{}: {}", markdown_text(category), markdown_text(&row.name)),
+                None => markdown_text(&row.name),
+            };
+            match &row.estimate {
+                Some(estimate) => CoefficientRow {
+                    name,
+                    estimate: fixed(estimate.estimate, decimals.max(3)),
+                    standard_error: fixed(estimate.standard_error, decimals.max(3)),
+                    statistic: statistic(estimate.statistic),
+                    p_value: p_value(estimate.p_value),
+                    interval: interval(estimate.lower, estimate.upper, decimals.max(3)),
+                },
+                None => CoefficientRow { name, estimate: "aliased".to_string(), standard_error: String::new(), statistic: String::new(), p_value: String::new(), interval: String::new() },
+            }
         })
         .collect();
+    let statistic_header = match analysis.coefficients.iter().find_map(|row| row.estimate.as_ref()).and_then(|estimate| estimate.df) {
+        Some(_) => "t",
+        None => "z",
+    };
     let fit_line = analysis.fit.as_ref().map(|fit| {
-        let r_squared = fit.r_squared.map(|value| fixed(value, 4)).unwrap_or_else(|| "not defined".to_string());
-        format!(
-            "n = {}, {} design columns of rank {}, residual SD {} on {} degrees of freedom, R² = {}, {} refinement step(s) of the least-squares solution.",
-            fit.n_analysed,
-            fit.n_columns,
-            fit.rank,
-            fixed(fit.residual_sd, decimals + 1),
-            fit.residual_df,
-            r_squared,
-            fit.refinement_steps
-        )
+        let mut parts = vec![format!("n = {}", fit.n_analysed), format!("{} parameters of rank {}", fit.n_parameters, fit.rank)];
+        if let Some(sd) = fit.residual_sd {
+            parts.push(format!("residual SD {} on {} degrees of freedom", fixed(sd, decimals + 1), fit.residual_df.unwrap_or(0)));
+        }
+        if let Some(r2) = fit.r_squared {
+            parts.push(format!("R² = {}", fixed(r2, 4)));
+        }
+        if let Some(deviance) = fit.deviance {
+            parts.push(format!("deviance {} on {} degrees of freedom", fixed(deviance, 3), fit.residual_df.unwrap_or(0)));
+        }
+        if let Some(log_likelihood) = fit.log_likelihood {
+            parts.push(format!("log-likelihood {}", fixed(log_likelihood, 3)));
+        }
+        if let (Some(pearson), Some(df)) = (fit.pearson_chi_square, fit.residual_df) {
+            if df > 0 {
+                parts.push(format!("Pearson χ²/df = {}", fixed(pearson / df as f64, 3)));
+            }
+        }
+        if let Some(dispersion) = fit.dispersion {
+            parts.push(format!("dispersion {}", fixed(dispersion, 4)));
+        }
+        if let Some(theta) = fit.theta {
+            let se = fit.theta_standard_error.map(|se| format!(" (SE {})", fixed(se, 3))).unwrap_or_default();
+            parts.push(format!("θ = {}{se}", fixed(theta, 3)));
+        }
+        if let Some(iterations) = fit.iterations {
+            parts.push(format!("{} ({iterations} iterations)", markdown_text(&fit.stop_reason)));
+        }
+        if let Some(steps) = fit.refinement_steps {
+            parts.push(format!("{steps} refinement step(s) of the least-squares solution"));
+        }
+        format!("{}.", parts.join(", "))
     });
+    let checks = analysis
+        .checks
+        .iter()
+        .map(|check| CheckView {
+            name: markdown_text(&check.name),
+            rows: check
+                .rows
+                .iter()
+                .map(|row| CheckRowView {
+                    term: markdown_text(&row.term),
+                    statistic_name: row.statistic_name,
+                    statistic: statistic(row.statistic),
+                    df: degrees(row.df),
+                    p_value: p_value(row.p_value),
+                })
+                .collect(),
+            verdict: markdown_text(&check.verdict),
+            failed: check.failed,
+            details: check.details.iter().map(|detail| markdown_text(detail)).collect(),
+        })
+        .collect();
     AnalysisView {
         number,
         id: markdown_text(&analysis.id),
@@ -513,14 +646,28 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         flow: analysis_flow,
         pooling,
         failure: analysis.failure.as_deref().map(markdown_text),
+        fallback: analysis.fallback_used.as_deref().map(markdown_text),
         confidence,
+        effect_header,
+        se_header,
+        has_category: analysis.contrasts.iter().any(|contrast| contrast.category.is_some()),
         effects,
         effect_sentences,
         overall,
         means,
         coefficients,
+        statistic_header,
         fit_line,
+        checks,
         aliased: analysis.fit.as_ref().map(|fit| fit.aliased_columns.iter().map(|name| markdown_text(name)).collect()).unwrap_or_default(),
+    }
+}
+
+fn capitalise(text: &str) -> String {
+    let mut characters = text.chars();
+    match characters.next() {
+        Some(first) => first.to_uppercase().collect::<String>() + characters.as_str(),
+        None => String::new(),
     }
 }
 
