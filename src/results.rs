@@ -210,6 +210,8 @@ pub struct ModelInfo {
     pub family: &'static str,
     /// The model actually fitted (after any fallback) and how, in words.
     pub description: String,
+    /// Further sentences on the parameterisation and standard errors.
+    pub details: String,
 }
 
 #[derive(Debug, Clone, Serialize)]

@@ -276,7 +276,7 @@ fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &
                 _ => None,
             }),
         },
-        model: ModelInfo { family: analysis.model.family_name(), description: String::new() },
+        model: ModelInfo { family: analysis.model.family_name(), description: String::new(), details: String::new() },
         covariates: analysis.covariates.iter().map(|&index| variable_info(index)).collect(),
         strata: analysis.strata.iter().map(|&index| variable_info(index)).collect(),
         confidence_level: analysis.confidence_level,
@@ -346,6 +346,7 @@ fn fill(result: &mut AnalysisResult, inference: &AnalysisInference, arms: &[plan
     }
     result.status = "fitted";
     result.model.description = inference.model_words.clone();
+    result.model.details = inference.model_details.clone();
     result.fit = Some(FitSummary::from(&inference.fit));
     result.coefficients = inference
         .coefficients

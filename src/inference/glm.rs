@@ -7,7 +7,7 @@
 use super::distributions::normal_quantile;
 use super::{
     bilinear, contrast_vector, describe_stop, drop_columns, exponentiate, likelihood_ratio, wald_chi_square, wald_estimate, AnalysisInference,
-    CheckOutcome, CheckRow, CoefficientRow, ContrastResult, FitStatistics, Finding,
+    CheckOutcome, CoefficientRow, ContrastResult, FitStatistics, Finding,
 };
 use crate::design::Design;
 use crate::models::glm::{fit_glm, profile_interval, CovarianceKind, Family, GlmData, GlmFit, GlmOptions, Link, Method};
@@ -41,7 +41,7 @@ fn family_words(family: GlmFamily, link: Link) -> String {
         GlmFamily::Binomial => format!("A binomial generalised linear model with {link_name} link"),
         GlmFamily::Poisson => "A Poisson generalised linear model with log link".to_string(),
         GlmFamily::NegativeBinomial => "A negative binomial (NB2, variance μ + μ²/θ, θ by maximum likelihood) generalised linear model with log link".to_string(),
-        GlmFamily::Gamma => format!("A Gamma generalised linear model with {link_name} link (dispersion by Pearson chi-square / residual df)"),
+        GlmFamily::Gamma => format!("A Gamma generalised linear model with {link_name} link (dispersion estimated by Pearson chi-square / residual df)"),
     }
 }
 
@@ -188,19 +188,20 @@ pub fn analyse(design: &Design, analysis: &Analysis, spec: &GlmSpec) -> Result<A
         Method::MaximumLikelihood => " was fitted by maximum likelihood (iteratively reweighted least squares)",
     });
     if design.offset.is_some() {
-        model_words.push_str(" with the log of the exposure as offset");
+        model_words.push_str(", with the log of the exposure as offset,");
     }
-    if spec.sandwich {
-        model_words.push_str("; standard errors are White's heteroscedasticity-consistent (HC0) sandwich estimates");
+    let mut model_details = if spec.sandwich {
+        "Standard errors are White's heteroscedasticity-consistent (HC0) sandwich estimates.".to_string()
     } else {
-        model_words.push_str("; standard errors come from the expected (Fisher) information at the estimate");
-    }
+        "Standard errors come from the expected (Fisher) information at the estimate.".to_string()
+    };
     if profile {
-        model_words.push_str("; confidence limits for comparisons with the reference arm are profile-likelihood limits");
+        model_details.push_str(" Confidence limits for comparisons with the reference arm are profile-likelihood limits.");
     }
 
     Ok(AnalysisInference {
         model_words,
+        model_details,
         fit: FitStatistics {
             n_analysed: design.n_rows(),
             n_parameters: design.column_names.len(),

@@ -98,6 +98,7 @@ pub fn infer(design: &Design, fit: &LeastSquaresFit, contrasts: &[Contrast], con
     };
     Ok(AnalysisInference {
         model_words: "A linear model (analysis of covariance) was fitted by least squares".to_string(),
+        model_details: "Standard errors use the residual variance on the residual degrees of freedom.".to_string(),
         fit: FitStatistics {
             n_analysed: fit.n_observations,
             n_parameters: fit.n_columns,

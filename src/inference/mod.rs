@@ -145,8 +145,11 @@ pub struct CheckOutcome {
 /// Everything inferred from one planned analysis.
 #[derive(Debug, Clone, PartialEq)]
 pub struct AnalysisInference {
-    /// The model and method in words, for the methods text.
+    /// The model and method in words, for the methods text: a clause such as
+    /// "A Poisson generalised linear model with log link was fitted by maximum likelihood".
     pub model_words: String,
+    /// Further sentences about the model (parameterisation, standard errors).
+    pub model_details: String,
     pub fit: FitStatistics,
     pub coefficients: Vec<CoefficientRow>,
     pub treatment_tests: Vec<JointTest>,

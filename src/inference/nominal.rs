@@ -89,9 +89,10 @@ pub fn analyse(design: &Design, analysis: &Analysis, reference_category: usize) 
         }
     }
     Ok(AnalysisInference {
-        model_words: format!(
-            "A baseline-category (multinomial) logit model, log(P(Y = k) / P(Y = {})) = xᵀβₖ for each other category k, was fitted by maximum likelihood (Newton–Raphson with analytic derivatives); exp of a treatment contrast is the relative-risk ratio of category k against \"{}\"; standard errors come from the observed information",
-            levels[reference_category], levels[reference_category]
+        model_words: "A baseline-category (multinomial) logit model was fitted by maximum likelihood (Newton–Raphson with analytic derivatives)".to_string(),
+        model_details: format!(
+            "The model is log(P(Y = k) / P(Y = {0})) = xᵀβₖ for each category k other than \"{0}\", so exp of a treatment contrast is the relative-risk ratio of category k against \"{0}\". Standard errors come from the observed information.",
+            levels[reference_category]
         ),
         fit: FitStatistics {
             n_analysed: design.n_rows(),

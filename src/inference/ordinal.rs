@@ -218,15 +218,16 @@ pub fn analyse(design: &Design, analysis: &Analysis, link: CumulativeLink) -> Re
         }
     }
 
-    let model_words = format!(
-        "A cumulative link model with {} link, g(P(Y ≤ j)) = θⱼ − xᵀβ, was fitted by maximum likelihood (Newton–Raphson with analytic derivatives) to the {} ordered categories ({}); a positive β moves subjects toward higher categories{}; standard errors come from the observed information at the estimate",
-        link_words(link),
+    let model_words = format!("A cumulative link model with {} link was fitted by maximum likelihood (Newton–Raphson with analytic derivatives)", link_words(link));
+    let model_details = format!(
+        "The model is g(P(Y ≤ j)) = θⱼ − xᵀβ over the {} ordered categories ({}), so a positive β moves subjects toward higher categories{}. Standard errors come from the observed information at the estimate.",
         prepared.levels.len(),
         prepared.levels.join(" < "),
         if link == CumulativeLink::Logit { " and exp(β) is the common odds ratio of being in a higher category" } else { "" }
     );
     Ok(AnalysisInference {
         model_words,
+        model_details,
         fit: FitStatistics {
             n_analysed: design.n_rows(),
             n_parameters: size,
@@ -357,7 +358,11 @@ fn proportional_odds_checks(design: &Design, prepared: &Prepared, kept: &[usize]
             name: "Proportional odds: Brant's Wald test".to_string(),
             rows: Vec::new(),
             failed: false,
-            verdict: format!("could not be computed: a binary split {}", describe_stop(&brant.stop_reason, &[])),
+            verdict: format!(
+                "could not be computed: the binary split above \"{}\" shows {}",
+                brant.failed_split.and_then(|split| prepared.levels.get(split)).cloned().unwrap_or_default(),
+                describe_stop(&brant.stop_reason, &kept.iter().map(|&column| prepared.names[column].clone()).collect::<Vec<_>>())
+            ),
             details: Vec::new(),
         },
         Err(error) => CheckOutcome { name: "Proportional odds: Brant's Wald test".to_string(), rows: Vec::new(), failed: false, verdict: format!("could not be computed: {error}"), details: Vec::new() },

@@ -953,7 +953,7 @@ fn read_analysis(
 }
 
 fn read_endpoint(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &[Variable]) -> Option<Endpoint> {
-    let fields = reader.mapping(node, path, &["column", "kind", "higher-is", "event"], &["column", "kind", "higher-is"])?;
+    let fields = reader.mapping(node, path, &["column", "kind", "higher-is", "event"], &["column", "kind"])?;
     let names: Vec<&str> = variables.iter().map(|variable| variable.name.as_str()).collect();
     let variable = fields.get("column").and_then(|value| reader.reference(value, &fields.child("column"), "declared variable", &names));
     let kind = fields.get("kind").and_then(|value| {
@@ -974,6 +974,19 @@ fn read_endpoint(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &[
         .and_then(|value| reader.choice(value, &fields.child("higher-is"), &[("better", Direction::Better), ("worse", Direction::Worse)]));
     let (Some(variable), Some(kind), Some(kind_node)) = (variable, kind, fields.get("kind")) else {
         return None;
+    };
+    // Unordered categories have no direction; every other endpoint must say which way is good.
+    let higher_is = match (higher_is, fields.get("higher-is"), kind) {
+        (None, None, EndpointKind::Nominal) => Some(Direction::Better),
+        (None, None, _) => {
+            reader.report(ErrorKind::PlanSchema, node, path, "missing required key \"higher-is\" (better or worse)".to_string());
+            return None;
+        }
+        (_, Some(value), EndpointKind::Nominal) => {
+            reader.report(ErrorKind::PlanSchema, value, &fields.child("higher-is"), "a nominal endpoint has no order, so \"higher-is\" does not apply".to_string());
+            return None;
+        }
+        (higher_is, _, _) => higher_is,
     };
     let declared = &variables[variable].kind;
     let name = &variables[variable].name;

@@ -30,6 +30,8 @@ pub struct Context {
 #[derive(Serialize)]
 struct MultiplicityView {
     section: usize,
+    /// Whether the HTML report shows the graph (graphical procedure).
+    graph: bool,
     summary: String,
     rows: Vec<HypothesisRow>,
     steps: Vec<String>,
@@ -84,6 +86,8 @@ struct AnalysisView {
     effect_header: String,
     se_header: String,
     has_category: bool,
+    /// The id of the analysis's forest plot in the HTML report.
+    figure: Option<String>,
     effects: Vec<EffectRow>,
     effect_sentences: Vec<String>,
     overall: Option<String>,
@@ -357,7 +361,7 @@ fn multiplicity_view(section: usize, family: &MultiplicityResult, results: &Resu
     } else {
         format!("{rejected} of {} hypotheses are rejected; not rejected: {}.", family.hypotheses.len(), remaining.join(", "))
     };
-    MultiplicityView { section, summary, rows, steps, conclusion }
+    MultiplicityView { section, graph: family.procedure == "graphical", summary, rows, steps, conclusion }
 }
 
 fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, arm_label: &dyn Fn(&str) -> String) -> AnalysisView {
@@ -390,6 +394,10 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         markdown_text(&population_label),
         join_words(&terms)
     );
+    if !analysis.model.details.is_empty() {
+        methods.push_str(&markdown_text(&analysis.model.details));
+        methods.push(' ');
+    }
     if let Some(event) = &analysis.endpoint.event {
         methods.push_str(&format!("The event is \"{}\". ", markdown_text(event)));
     }
@@ -651,6 +659,7 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         effect_header,
         se_header,
         has_category: analysis.contrasts.iter().any(|contrast| contrast.category.is_some()),
+        figure: (analysis.contrasts.iter().any(|contrast| contrast.estimate.is_some())).then(|| format!("forest-{number}")),
         effects,
         effect_sentences,
         overall,
@@ -663,7 +672,7 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
     }
 }
 
-fn capitalise(text: &str) -> String {
+pub(crate) fn capitalise(text: &str) -> String {
     let mut characters = text.chars();
     match characters.next() {
         Some(first) => first.to_uppercase().collect::<String>() + characters.as_str(),

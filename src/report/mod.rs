@@ -11,6 +11,7 @@
 //! Pure: no I/O, no clock.
 
 mod context;
+pub mod figures;
 pub mod format;
 pub mod tables;
 
@@ -18,6 +19,7 @@ use crate::error::Error;
 use crate::results::Results;
 use minijinja::Environment;
 use pulldown_cmark::{html, Event, Options, Parser};
+use std::collections::BTreeMap;
 
 /// The templates compiled into cairn, by name, as hashed inputs.
 pub const TEMPLATES: [(&str, &str); 3] = [
@@ -36,6 +38,7 @@ pub struct Rendered {
 
 pub fn render(results: &Results) -> Result<Rendered, Error> {
     let context = context::build(results);
+    let figures = build_figures(results)?;
     let mut environment = Environment::new();
     let syntax = minijinja::syntax::SyntaxConfig::builder()
         .trim_blocks(true)
@@ -52,7 +55,7 @@ pub fn render(results: &Results) -> Result<Rendered, Error> {
         .get_template("report.md.j2")
         .and_then(|template| template.render(minijinja::value::Serde(&context)))
         .map_err(|cause| Error::internal(format!("cannot render the Markdown report: {cause:#}")))?;
-    let body = markdown_to_html(&markdown);
+    let body = markdown_to_html_with_figures(&markdown, &figures);
     let css = TEMPLATES[2].1;
     let html = environment
         .get_template("report.html.j2")
@@ -69,8 +72,29 @@ pub fn render(results: &Results) -> Result<Rendered, Error> {
 
 /// CommonMark with tables to HTML; raw HTML in the Markdown is shown as text.
 pub fn markdown_to_html(markdown: &str) -> String {
+    markdown_to_html_with_figures(markdown, &BTreeMap::new())
+}
+
+/// The marker a template writes where a figure belongs: an HTML comment,
+/// invisible in Markdown viewers. Text from plans and data cannot produce it,
+/// because their `<` is escaped before it reaches the Markdown.
+fn figure_marker(id: &str) -> String {
+    format!("<!-- cairn-figure:{id} -->")
+}
+
+/// As [`markdown_to_html`], but a figure marker whose id is in `figures`
+/// becomes that figure's SVG (drawn by our own code, escaped there).
+fn markdown_to_html_with_figures(markdown: &str, figures: &BTreeMap<String, String>) -> String {
     let parser = Parser::new_ext(markdown, Options::ENABLE_TABLES).map(|event| match event {
-        Event::Html(text) | Event::InlineHtml(text) => Event::Text(text),
+        Event::Html(text) | Event::InlineHtml(text) => {
+            let found = figures.iter().find(|(id, _)| text.trim() == figure_marker(id));
+            match found {
+                // Inline SVG in HTML needs no namespace declaration; leaving it
+                // out keeps the page free of any URL.
+                Some((_, svg)) => Event::Html(format!("<figure class=\"cairn-figure\">{}</figure>\n", svg.replace(" xmlns=\"http://www.w3.org/2000/svg\"", "")).into()),
+                None => Event::Text(text),
+            }
+        }
         other => other,
     });
     let mut output = String::with_capacity(markdown.len() * 2);
@@ -89,4 +113,75 @@ mod tests {
         assert!(!html.contains("<img"));
         assert!(html.contains("&lt;script&gt;"));
     }
+}
+
+/// Every figure of the report, by the id its marker uses: a forest plot per
+/// analysis with estimable contrasts, and the multiplicity graph.
+fn build_figures(results: &Results) -> Result<BTreeMap<String, String>, Error> {
+    use figures::{forest_svg, graph_svg, ForestPlot, ForestRow, ForestScale, GraphFigure, GraphNode};
+    let arm_label = |code: &str| results.study.arms.iter().find(|arm| arm.code == code).map(|arm| arm.label.clone()).unwrap_or_else(|| code.to_string());
+    let mut figures = BTreeMap::new();
+    for (index, analysis) in results.analyses.iter().enumerate() {
+        if analysis.contrasts.iter().all(|contrast| contrast.estimate.is_none()) {
+            continue;
+        }
+        let ratio = analysis.contrasts.iter().find_map(|contrast| contrast.ratio.as_ref().map(|ratio| ratio.name));
+        let rows = analysis
+            .contrasts
+            .iter()
+            .map(|contrast| {
+                let mut label = format!("{} vs {}", arm_label(&contrast.arm), arm_label(&contrast.versus));
+                if let Some(category) = &contrast.category {
+                    label = format!("{label}: {category}");
+                }
+                match (&contrast.ratio, &contrast.estimate) {
+                    (Some(ratio), _) => ForestRow { label, estimate: ratio.estimate, lower: ratio.lower, upper: ratio.upper, note: None },
+                    (None, Some(estimate)) if ratio.is_none() => ForestRow { label, estimate: estimate.estimate, lower: estimate.lower, upper: estimate.upper, note: None },
+                    _ => ForestRow { label, estimate: f64::NAN, lower: f64::NAN, upper: f64::NAN, note: Some("not estimable".to_string()) },
+                }
+            })
+            .collect();
+        let confidence = format::percent(analysis.confidence_level);
+        let (scale, axis_label) = match ratio {
+            Some(name) => (ForestScale::Ratio, format!("{} ({confidence} CI, log scale)", context::capitalise(name))),
+            None => (ForestScale::Difference, format!("{} in {} ({confidence} CI)", context::capitalise(analysis.contrasts[0].scale), analysis.endpoint.label)),
+        };
+        let ordered = analysis.endpoint.kind != "nominal";
+        let lower_is_better = analysis.endpoint.higher_is == "worse";
+        let (favours_lower, favours_higher) = match (ordered, lower_is_better) {
+            (false, _) => (String::new(), String::new()),
+            (true, true) => ("favours the first-named arm".to_string(), "favours the second-named arm".to_string()),
+            (true, false) => ("favours the second-named arm".to_string(), "favours the first-named arm".to_string()),
+        };
+        let decimals = match analysis.fit.as_ref().and_then(|fit| fit.residual_sd) {
+            Some(sd) if ratio.is_none() => format::decimals_for_scale(sd),
+            _ => 2,
+        };
+        let plot = ForestPlot { title: analysis.title.clone(), axis_label, scale, favours_lower, favours_higher, rows, value_decimals: decimals };
+        let svg = forest_svg(&plot).map_err(|error| Error::internal(format!("the forest plot of analysis {} could not be drawn: {error}", analysis.id)))?;
+        figures.insert(format!("forest-{}", index + 1), svg);
+    }
+    if let Some(family) = &results.multiplicity {
+        if family.procedure == "graphical" {
+            let nodes = family.hypotheses.iter().map(|hypothesis| GraphNode { name: hypothesis.id.clone(), weight: hypothesis.initial_weight, rejected: false }).collect();
+            // One row per analysis, in the order the family first names them.
+            let mut rows: Vec<(String, Vec<usize>)> = Vec::new();
+            for (index, hypothesis) in family.hypotheses.iter().enumerate() {
+                match rows.iter_mut().find(|(analysis, _)| analysis == &hypothesis.analysis) {
+                    Some((_, members)) => members.push(index),
+                    None => rows.push((hypothesis.analysis.clone(), vec![index])),
+                }
+            }
+            let figure = GraphFigure {
+                title: "The planned multiplicity graph".to_string(),
+                id_prefix: "family".to_string(),
+                nodes,
+                transitions: family.transitions.clone(),
+                rows: Some(rows.into_iter().map(|(_, members)| members).collect()),
+            };
+            let svg = graph_svg(&figure).map_err(|error| Error::internal(format!("the multiplicity graph could not be drawn: {error}")))?;
+            figures.insert("graph".to_string(), svg);
+        }
+    }
+    Ok(figures)
 }
