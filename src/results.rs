@@ -182,6 +182,10 @@ pub struct AnalysisResult {
     pub treatment_test_failure: Option<String>,
     pub contrasts: Vec<ContrastInfo>,
     pub adjusted_means: Vec<ArmMeanInfo>,
+    /// Standardised (marginal) treatment effects of nonlinear models.
+    pub marginal: Option<MarginalInfo>,
+    /// Why the marginal effects could not be computed, when they could not.
+    pub marginal_failure: Option<String>,
     pub checks: Vec<CheckInfo>,
     /// The planned fallback that was used, in words.
     pub fallback_used: Option<String>,
@@ -290,6 +294,38 @@ impl From<&crate::inference::FitStatistics> for FitSummary {
             aliased_columns: fit.aliased_columns.clone(),
         }
     }
+}
+
+/// Standardised treatment effects: per arm, the model's prediction averaged
+/// over all analysed subjects as if all had received that arm.
+#[derive(Debug, Clone, Serialize)]
+pub struct MarginalInfo {
+    /// The variance estimator, in words.
+    pub variance: String,
+    pub means: Vec<MarginalMeanInfo>,
+    pub effects: Vec<MarginalEffectInfo>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct MarginalMeanInfo {
+    pub arm: String,
+    pub mean: f64,
+    pub standard_error: f64,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct MarginalEffectInfo {
+    pub contrast: String,
+    pub arm: String,
+    pub versus: String,
+    /// "risk difference", "risk ratio", "odds ratio", "mean difference" or "ratio of means".
+    pub scale: &'static str,
+    pub estimate: f64,
+    /// Of the estimate for differences; of its natural logarithm for ratios.
+    pub standard_error: f64,
+    pub lower: f64,
+    pub upper: f64,
+    pub p_value: f64,
 }
 
 /// An assumption check or supportive test.

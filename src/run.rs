@@ -307,6 +307,8 @@ fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &
         treatment_test_failure: None,
         contrasts: Vec::new(),
         adjusted_means: Vec::new(),
+        marginal: None,
+        marginal_failure: None,
         checks: Vec::new(),
         fallback_used: None,
     };
@@ -404,6 +406,31 @@ fn fill(result: &mut AnalysisResult, inference: &AnalysisInference, arms: &[plan
         })
         .collect();
     result.fallback_used = inference.fallback_used.clone();
+    match &inference.marginal {
+        Some(Ok(summary)) => {
+            result.marginal = Some(MarginalInfo {
+                variance: summary.variance.clone(),
+                means: summary.means.iter().map(|(arm, mean, standard_error)| MarginalMeanInfo { arm: arms[*arm].code.clone(), mean: *mean, standard_error: *standard_error }).collect(),
+                effects: summary
+                    .effects
+                    .iter()
+                    .map(|effect| MarginalEffectInfo {
+                        contrast: effect.id.clone(),
+                        arm: arms[effect.arm].code.clone(),
+                        versus: arms[effect.versus].code.clone(),
+                        scale: effect.scale,
+                        estimate: effect.estimate,
+                        standard_error: effect.standard_error,
+                        lower: effect.lower,
+                        upper: effect.upper,
+                        p_value: effect.p_value,
+                    })
+                    .collect(),
+            });
+        }
+        Some(Err(reason)) => result.marginal_failure = Some(reason.clone()),
+        None => {}
+    }
 }
 
 fn manifest(staged: &Staged) -> Result<Vec<u8>, Error> {

@@ -227,6 +227,7 @@ pub fn analyse(design: &Design, analysis: &Analysis, spec: &GlmSpec) -> Result<A
         effect_scale,
         ratio_name,
         adjusted_means: Vec::new(),
+        marginal: Some(marginal_summary(design, analysis, &options, &fit, family, spec.link, method)),
         checks,
         findings,
         fallback_used,
@@ -285,4 +286,68 @@ fn heterogeneity_check(design: &Design, data: &GlmData<'_>, options: &GlmOptions
         }
     });
     super::heterogeneity_outcome(name, outcome, level)
+}
+
+/// Standardised arm means and their contrasts (2023 US FDA guidance on
+/// covariate adjustment). The variance is Ye, Shao, Yi and Zhao's (2023)
+/// model-robust estimator when the fit is a maximum-likelihood fit with the
+/// canonical link (so residuals balance within arms); otherwise the
+/// influence-function (sandwich) estimator of the joint M-estimator.
+fn marginal_summary(design: &Design, analysis: &Analysis, options: &GlmOptions, fit: &GlmFit, family: GlmFamily, link: Link, method: Method) -> Result<super::MarginalSummary, String> {
+    use super::marginal::{marginal_effects, marginal_means, EffectScale, MarginalInput, MarginalVariance};
+    let canonical = matches!((family, link), (GlmFamily::Binomial, Link::Logit) | (GlmFamily::Poisson, Link::Log));
+    let (variance, words) = if canonical && method == Method::MaximumLikelihood {
+        (MarginalVariance::Robust, "the model-robust variance of Ye, Shao, Yi and Zhao (2023), which accounts for the covariates being sampled")
+    } else {
+        (MarginalVariance::InfluenceFunction, "the influence-function (sandwich) variance of the standardised means, which accounts for the covariates being sampled")
+    };
+    let engine_family = match (&options.family, fit.theta.as_ref()) {
+        (Family::NegativeBinomial { .. }, Some(theta)) => Family::NegativeBinomial { theta: Some(theta.theta) },
+        (other, _) => *other,
+    };
+    let coefficients: Vec<f64> = fit.coefficients.iter().map(|value| value.unwrap_or(0.0)).collect();
+    let input = MarginalInput {
+        design: &design.matrix,
+        response: &design.response,
+        offset: design.offset.as_deref(),
+        treatment_columns: &design.treatment_columns,
+        arm_of_row: &design.arm_of_row,
+        coefficients: &coefficients,
+        coefficient_covariance: Some(&fit.covariance),
+        family: engine_family,
+        link,
+        variance,
+    };
+    let means = marginal_means(&input).map_err(|error| error.to_string())?;
+    let binary = family == GlmFamily::Binomial;
+    let scales: Vec<(EffectScale, &'static str)> = if binary {
+        vec![(EffectScale::Difference, "risk difference"), (EffectScale::Ratio, "risk ratio"), (EffectScale::OddsRatio, "odds ratio")]
+    } else {
+        vec![(EffectScale::Difference, "mean difference"), (EffectScale::Ratio, "ratio of means")]
+    };
+    let pairs: Vec<(usize, usize)> = analysis.contrasts.iter().map(|contrast| (contrast.arm, contrast.versus)).collect();
+    let critical = normal_quantile(0.5 + analysis.confidence_level / 2.0).ok_or_else(|| "the normal quantile could not be computed".to_string())?;
+    let scale_list: Vec<EffectScale> = scales.iter().map(|(scale, _)| *scale).collect();
+    let effects = marginal_effects(&means, &pairs, &scale_list, critical).map_err(|error| error.to_string())?;
+    let mut contrasts = Vec::new();
+    for effect in &effects {
+        let Some(contrast) = analysis.contrasts.iter().find(|contrast| contrast.arm == effect.arm && contrast.versus == effect.versus) else { continue };
+        let scale = scales.iter().find(|(scale, _)| *scale == effect.scale).map(|(_, name)| *name).unwrap_or("difference");
+        contrasts.push(super::MarginalContrast {
+            id: contrast.id.clone(),
+            arm: effect.arm,
+            versus: effect.versus,
+            scale,
+            estimate: effect.estimate,
+            standard_error: effect.standard_error,
+            lower: effect.lower,
+            upper: effect.upper,
+            p_value: effect.p_value,
+        });
+    }
+    Ok(super::MarginalSummary {
+        variance: words.to_string(),
+        means: means.arms.iter().map(|arm| (arm.arm, arm.mean, arm.standard_error)).collect(),
+        effects: contrasts,
+    })
 }

@@ -120,6 +120,7 @@ pub fn infer(design: &Design, fit: &LeastSquaresFit, contrasts: &[Contrast], con
         effect_scale: "difference",
         ratio_name: None,
         adjusted_means,
+        marginal: None,
         checks: Vec::new(),
         findings: Vec::new(),
         fallback_used: None,

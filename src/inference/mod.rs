@@ -16,6 +16,7 @@ pub mod cmh;
 pub mod distributions;
 pub mod glm;
 pub mod linear;
+pub mod marginal;
 pub mod nominal;
 pub mod ordinal;
 
@@ -78,6 +79,33 @@ pub struct ContrastResult {
     pub ratio: Option<RatioEstimate>,
     /// "Wald" or "profile likelihood".
     pub interval_method: &'static str,
+}
+
+/// Standardised treatment effects: each arm's mean prediction over all
+/// analysed subjects as if all had received it, and contrasts of those means.
+#[derive(Debug, Clone, PartialEq)]
+pub struct MarginalSummary {
+    /// Which variance estimator was used, in words.
+    pub variance: String,
+    /// Per arm: (arm, standardised mean, its standard error).
+    pub means: Vec<(usize, f64, f64)>,
+    pub effects: Vec<MarginalContrast>,
+}
+
+/// One standardised contrast.
+#[derive(Debug, Clone, PartialEq)]
+pub struct MarginalContrast {
+    pub id: String,
+    pub arm: usize,
+    pub versus: usize,
+    /// "risk difference", "risk ratio", "odds ratio", "mean difference", "ratio of means".
+    pub scale: &'static str,
+    pub estimate: f64,
+    /// Of the estimate for differences, of its logarithm for ratios.
+    pub standard_error: f64,
+    pub lower: f64,
+    pub upper: f64,
+    pub p_value: f64,
 }
 
 /// The model-based mean of one arm.
@@ -161,6 +189,8 @@ pub struct AnalysisInference {
     /// The name of the exponentiated scale ("odds ratio", "rate ratio"), if any.
     pub ratio_name: Option<&'static str>,
     pub adjusted_means: Vec<ArmMean>,
+    /// Standardised (marginal) treatment effects for nonlinear models, or why they are missing.
+    pub marginal: Option<Result<MarginalSummary, String>>,
     pub checks: Vec<CheckOutcome>,
     pub findings: Vec<Finding>,
     /// The fallback that was used, in words, if one was triggered.

@@ -111,6 +111,7 @@ pub fn analyse(design: &Design, analysis: &Analysis, reference_category: usize) 
         effect_scale: "log relative-risk ratio",
         ratio_name: Some("relative-risk ratio"),
         adjusted_means: Vec::new(),
+        marginal: None,
         checks: Vec::new(),
         findings: Vec::new(),
         fallback_used: None,

@@ -246,6 +246,7 @@ pub fn analyse(design: &Design, analysis: &Analysis, link: CumulativeLink) -> Re
         effect_scale: if link == CumulativeLink::Logit { "log odds ratio" } else { "difference on the latent scale" },
         ratio_name,
         adjusted_means: Vec::new(),
+        marginal: None,
         checks,
         findings,
         fallback_used,

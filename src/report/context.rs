@@ -88,6 +88,7 @@ struct AnalysisView {
     has_category: bool,
     /// The id of the analysis's forest plot in the HTML report.
     figure: Option<String>,
+    marginal: Option<MarginalView>,
     effects: Vec<EffectRow>,
     effect_sentences: Vec<String>,
     overall: Option<String>,
@@ -97,6 +98,30 @@ struct AnalysisView {
     fit_line: Option<String>,
     checks: Vec<CheckView>,
     aliased: Vec<String>,
+}
+
+#[derive(Serialize)]
+struct MarginalView {
+    sentence: String,
+    means: Vec<MarginalMeanRow>,
+    effects: Vec<MarginalRow>,
+    failure: Option<String>,
+}
+
+#[derive(Serialize)]
+struct MarginalMeanRow {
+    arm: String,
+    mean: String,
+    standard_error: String,
+}
+
+#[derive(Serialize)]
+struct MarginalRow {
+    label: String,
+    scale: String,
+    estimate: String,
+    interval: String,
+    p_value: String,
 }
 
 #[derive(Serialize)]
@@ -645,7 +670,45 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
             details: check.details.iter().map(|detail| markdown_text(detail)).collect(),
         })
         .collect();
+    let marginal = match (&analysis.marginal, &analysis.marginal_failure) {
+        (Some(marginal), _) => {
+            let percent_scale = analysis.endpoint.kind == "binary";
+            let show_mean = |value: f64| if percent_scale { fixed(value * 100.0, 1) + "%" } else { fixed(value, 3) };
+            Some(MarginalView {
+                sentence: format!(
+                    "For each arm, the model's predicted {} is averaged over all {} analysed subjects as if every one had received that arm (standardisation, as the 2023 US FDA guidance on covariate adjustment describes); contrasts of these means have Wald {confidence} confidence intervals from {}.",
+                    if percent_scale { "probability of the event" } else { "mean" },
+                    n_analysed,
+                    markdown_text(&marginal.variance)
+                ),
+                means: marginal
+                    .means
+                    .iter()
+                    .map(|mean| MarginalMeanRow { arm: markdown_text(&arm_label(&mean.arm)), mean: show_mean(mean.mean), standard_error: show_mean(mean.standard_error) })
+                    .collect(),
+                effects: marginal
+                    .effects
+                    .iter()
+                    .map(|effect| {
+                        let difference = effect.scale.ends_with("difference");
+                        let show = |value: f64| if difference && percent_scale { format!("{} points", fixed(value * 100.0, 1)) } else if difference { fixed(value, 3) } else { fixed(value, 2) };
+                        MarginalRow {
+                            label: format!("{} vs {}", markdown_text(&arm_label(&effect.arm)), markdown_text(&arm_label(&effect.versus))),
+                            scale: capitalise(effect.scale),
+                            estimate: show(effect.estimate),
+                            interval: format!("{} to {}", show(effect.lower), show(effect.upper)),
+                            p_value: p_value(effect.p_value),
+                        }
+                    })
+                    .collect(),
+                failure: None,
+            })
+        }
+        (None, Some(reason)) => Some(MarginalView { sentence: String::new(), means: Vec::new(), effects: Vec::new(), failure: Some(markdown_text(reason)) }),
+        (None, None) => None,
+    };
     AnalysisView {
+        marginal,
         number,
         id: markdown_text(&analysis.id),
         title: markdown_text(&analysis.title),
