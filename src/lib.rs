@@ -29,6 +29,7 @@ pub mod provenance;
 pub mod report;
 pub mod results;
 pub mod run;
+pub mod verify;
 
 pub use error::{Error, ErrorKind, Location, Problem};
 pub use plan::{load as load_plan, Plan};

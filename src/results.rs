@@ -14,6 +14,7 @@ pub const SCHEMA: &str = "cairn-results/1";
 #[derive(Debug, Clone, Serialize)]
 pub struct Results {
     pub schema: &'static str,
+    pub run: RunInfo,
     pub tool: Tool,
     pub study: StudyInfo,
     pub plan: PlanInfo,
@@ -31,6 +32,8 @@ pub struct MultiplicityResult {
     pub alpha: f64,
     /// 1 or 2: whether the hypotheses' p-values are one-sided (in the direction of benefit) or two-sided.
     pub sides: u32,
+    /// True in a dry run: p-values and decisions are hidden.
+    pub masked: bool,
     pub hypotheses: Vec<HypothesisResultInfo>,
     /// Sequential tests (holm, hochberg, fixed-sequence, fallback), in order.
     pub tests: Vec<TestStepInfo>,
@@ -49,7 +52,8 @@ pub struct HypothesisResultInfo {
     pub initial_weight: f64,
     /// `null` when the analysis or contrast could not be estimated.
     pub raw_p: Option<f64>,
-    pub adjusted_p: f64,
+    /// `null` only when masked in a dry run.
+    pub adjusted_p: Option<f64>,
     pub rejected: bool,
     pub rejection_step: Option<usize>,
     pub analysis_failed: bool,
@@ -72,6 +76,17 @@ pub struct GraphStepInfo {
     pub local_levels: Vec<f64>,
     pub weights_after: Vec<f64>,
     pub transitions_after: Vec<Vec<f64>>,
+}
+
+/// How the run was made, so that `verify` can repeat it.
+#[derive(Debug, Clone, Serialize)]
+pub struct RunInfo {
+    /// "run" (unblinded) or "dry-run" (dummy treatment codes, estimates masked).
+    pub mode: &'static str,
+    /// The dry run's seed.
+    pub seed: Option<u64>,
+    /// Analyses selected with --only (empty: all, as planned).
+    pub only: Vec<String>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -363,6 +378,8 @@ pub struct CoefficientInfo {
     /// The outcome category of the row (nominal endpoints), else `null`.
     pub category: Option<String>,
     pub aliased: bool,
+    /// True in a dry run for treatment coefficients, whose estimates are hidden.
+    pub masked: bool,
     pub estimate: Option<EstimateInfo>,
 }
 

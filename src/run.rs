@@ -18,12 +18,39 @@ use crate::report;
 use crate::results::*;
 use std::path::Path;
 
+/// How a run treats the treatment codes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Mode {
+    /// After unblinding: the allocation file is read.
+    Unblinded,
+    /// Before unblinding: the allocation file is never read; dummy codes from
+    /// the seed stand in, and every treatment estimate is masked.
+    DryRun { seed: u64 },
+}
+
+/// Everything a run needs besides the plan: the mode and any command-line
+/// overrides (each reported as a deviation).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct RunOptions {
+    pub mode: Mode,
+    /// Run only these analyses (a command-line override of the plan).
+    pub only: Vec<String>,
+}
+
+impl Default for RunOptions {
+    fn default() -> RunOptions {
+        RunOptions { mode: Mode::Unblinded, only: Vec::new() }
+    }
+}
+
 /// Everything read from disk for one run, with the raw bytes that were hashed.
 pub struct Inputs {
     pub plan: LoadedPlan,
     pub lock: Option<LoadedLock>,
+    pub dry_run: Option<crate::provenance::dry_run::LoadedDryRun>,
     pub subjects_bytes: Vec<u8>,
-    pub allocation_bytes: Vec<u8>,
+    /// `None` in a dry run, which never reads the allocation file.
+    pub allocation_bytes: Option<Vec<u8>>,
     pub data: StudyData,
 }
 
@@ -37,24 +64,35 @@ pub struct CheckSummary {
     pub lock_status: &'static str,
 }
 
-/// Read and validate the plan and every file it names.
-pub fn load_inputs(plan_path: &Path) -> Result<Inputs, Error> {
+/// Read and validate the plan and every file it names. A dry run reads the
+/// subjects file only and makes dummy treatment codes from its seed.
+pub fn load_inputs(plan_path: &Path, mode: Mode) -> Result<Inputs, Error> {
     let plan = plan::load(plan_path)?;
     let lock = lock::read(plan_path)?;
+    let dry_run = match mode {
+        Mode::Unblinded => crate::provenance::dry_run::read(plan_path)?,
+        Mode::DryRun { .. } => None,
+    };
     let subjects_path = plan.resolve(&plan.plan.data.subjects)?;
-    let allocation_path = plan.resolve(&plan.plan.data.treatment.file)?;
     let subjects_bytes = data::read_file(&subjects_path, &plan.plan.data.subjects)?;
-    let allocation_bytes = data::read_file(&allocation_path, &plan.plan.data.treatment.file)?;
     let subjects = data::read_table(&subjects_bytes, &plan.plan.data.subjects)?;
-    let allocation = data::read_table(&allocation_bytes, &plan.plan.data.treatment.file)?;
+    let (allocation_bytes, allocation) = match mode {
+        Mode::Unblinded => {
+            let allocation_path = plan.resolve(&plan.plan.data.treatment.file)?;
+            let bytes = data::read_file(&allocation_path, &plan.plan.data.treatment.file)?;
+            let table = data::read_table(&bytes, &plan.plan.data.treatment.file)?;
+            (Some(bytes), table)
+        }
+        Mode::DryRun { seed } => (None, data::dummy_allocation(&plan.plan, &subjects, seed)),
+    };
     let study_data = data::assemble(&plan.plan, &subjects, &allocation)?;
-    Ok(Inputs { plan, lock, subjects_bytes, allocation_bytes, data: study_data })
+    Ok(Inputs { plan, lock, dry_run, subjects_bytes, allocation_bytes, data: study_data })
 }
 
 /// `cairn check`: validate the plan and the data it names, and build every
 /// analysis's design (so empty arms and missing columns surface before a run).
 pub fn check(plan_path: &Path) -> Result<CheckSummary, Error> {
-    let inputs = load_inputs(plan_path)?;
+    let inputs = load_inputs(plan_path, Mode::Unblinded)?;
     for analysis in &inputs.plan.plan.analyses {
         design::build(&inputs.plan.plan, analysis, &inputs.data)?;
     }
@@ -67,22 +105,66 @@ pub fn check(plan_path: &Path) -> Result<CheckSummary, Error> {
     })
 }
 
-/// `cairn run`: fit every planned analysis and write the outputs into `out`.
-pub fn run(plan_path: &Path, out: &Path, force: bool) -> Result<Vec<String>, Error> {
+/// `cairn run` and `cairn dry-run`: fit every planned analysis and write the
+/// outputs into `out`. Returns the inputs read and the staged outputs.
+pub fn run(plan_path: &Path, out: &Path, force: bool, options: &RunOptions) -> Result<(Inputs, Staged), Error> {
     if out.exists() && !force {
         // Refuse before any work so that a long run does not end in this error.
         Staged::new().commit(out, false)?;
     }
-    let inputs = load_inputs(plan_path)?;
-    let staged = produce(&inputs)?;
+    let inputs = load_inputs(plan_path, options.mode)?;
+    let staged = produce(&inputs, options)?;
     staged.commit(out, force)?;
-    Ok(staged.files().iter().map(|(name, _)| name.clone()).collect())
+    if let Mode::DryRun { seed } = options.mode {
+        crate::provenance::dry_run::write(plan_path, &inputs.plan.bytes, &inputs.plan.plan.data.subjects, &inputs.subjects_bytes, seed)?;
+    }
+    Ok((inputs, staged))
 }
 
 /// Compute every output of a run in memory.
-pub fn produce(inputs: &Inputs) -> Result<Staged, Error> {
+pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
     let plan = &inputs.plan.plan;
     let mut deviations = Vec::new();
+    for id in &options.only {
+        if !plan.analyses.iter().any(|analysis| &analysis.id == id) {
+            let known: Vec<&str> = plan.analyses.iter().map(|analysis| analysis.id.as_str()).collect();
+            return Err(Error::one(crate::error::Problem::new(
+                crate::error::ErrorKind::PlanReference,
+                format!("--only names no analysis \"{id}\" (the plan has: {})", known.join(", ")),
+            )));
+        }
+    }
+    if !options.only.is_empty() {
+        let skipped: Vec<&str> = plan.analyses.iter().filter(|analysis| !options.only.contains(&analysis.id)).map(|analysis| analysis.id.as_str()).collect();
+        deviations.push(Deviation {
+            code: "COMMAND-LINE-OVERRIDE",
+            severity: "major",
+            analysis: None,
+            message: format!("--only restricted the run to {}; not run as planned: {}", options.only.join(", "), if skipped.is_empty() { "none".to_string() } else { skipped.join(", ") }),
+        });
+    }
+    if let (Mode::Unblinded, Some(dry_run)) = (options.mode, &inputs.dry_run) {
+        let now = sha256_hex(&inputs.subjects_bytes);
+        if dry_run.record.subjects_sha256 != now {
+            deviations.push(Deviation {
+                code: "DATA-CHANGED-SINCE-DRY-RUN",
+                severity: "major",
+                analysis: None,
+                message: format!(
+                    "the subjects file {} changed after the blinded dry run: its SHA-256 was {} at the dry run and is {} now",
+                    plan.data.subjects, dry_run.record.subjects_sha256, now
+                ),
+            });
+        }
+        if dry_run.record.plan_sha256 != sha256_hex(&inputs.plan.bytes) {
+            deviations.push(Deviation {
+                code: "PLAN-CHANGED-SINCE-DRY-RUN",
+                severity: "minor",
+                analysis: None,
+                message: format!("the plan changed after the blinded dry run (SHA-256 then {}, now {})", dry_run.record.plan_sha256, sha256_hex(&inputs.plan.bytes)),
+            });
+        }
+    }
     let (status, last) = lock_status(inputs);
     match status {
         "unlocked" => deviations.push(Deviation {
@@ -127,9 +209,39 @@ pub fn produce(inputs: &Inputs) -> Result<Staged, Error> {
         });
     }
 
+    for (variable, count, places) in &inputs.data.out_of_range {
+        let range = plan.variables.iter().find(|candidate| &candidate.name == variable).and_then(|candidate| candidate.range);
+        let (low, high) = range.unwrap_or((f64::NAN, f64::NAN));
+        deviations.push(Deviation {
+            code: "VALUE-OUT-OF-RANGE",
+            severity: "major",
+            analysis: None,
+            message: format!("{count} value(s) of {variable} lie outside its declared range {low} to {high} (first at {}); they were analysed as recorded", places.join(", ")),
+        });
+    }
     let mut analyses = Vec::new();
     for analysis in &plan.analyses {
+        if !options.only.is_empty() && !options.only.contains(&analysis.id) {
+            analyses.push(not_run(plan, analysis));
+            continue;
+        }
         let design = design::build(plan, analysis, &inputs.data)?;
+        if let Some(limit) = analysis.max_excluded {
+            let in_population: usize = design.in_population.iter().sum();
+            let excluded: usize = design.exclusions.iter().flat_map(|exclusion| exclusion.per_arm.iter()).sum();
+            if in_population > 0 && excluded as f64 > limit * in_population as f64 {
+                deviations.push(Deviation {
+                    code: "MISSING-ABOVE-PLAN",
+                    severity: "major",
+                    analysis: Some(analysis.id.clone()),
+                    message: format!(
+                        "{excluded} of {in_population} subjects ({:.1}%) were left out for missing values, more than the planned {:.1}%",
+                        100.0 * excluded as f64 / in_population as f64,
+                        100.0 * limit
+                    ),
+                });
+            }
+        }
         let result = fit_analysis(plan, analysis, &design, &mut deviations);
         analyses.push(result);
     }
@@ -138,8 +250,19 @@ pub fn produce(inputs: &Inputs) -> Result<Staged, Error> {
         Some(spec) => Some(apply_multiplicity(plan, spec, &analyses, &mut deviations)?),
         None => None,
     };
-    let results = Results {
+    let mut results = Results {
         schema: SCHEMA,
+        run: RunInfo {
+            mode: match options.mode {
+                Mode::Unblinded => "run",
+                Mode::DryRun { .. } => "dry-run",
+            },
+            seed: match options.mode {
+                Mode::DryRun { seed } => Some(seed),
+                Mode::Unblinded => None,
+            },
+            only: options.only.clone(),
+        },
         tool: Tool { name: "cairn", version: TOOL_VERSION },
         study: StudyInfo {
             id: plan.study.id.clone(),
@@ -162,6 +285,9 @@ pub fn produce(inputs: &Inputs) -> Result<Staged, Error> {
         multiplicity,
         analyses,
     };
+    if let Mode::DryRun { .. } = options.mode {
+        mask_for_dry_run(&mut results);
+    }
     let results_json = to_json(&results)?;
     let rendered = report::render(&results)?;
     let mut staged = Staged::new();
@@ -209,12 +335,12 @@ fn input_list(inputs: &Inputs) -> Vec<Input> {
         sha256: sha256_hex(&inputs.subjects_bytes),
         bytes: inputs.subjects_bytes.len() as u64,
     });
-    list.push(Input {
-        role: "allocation",
-        file: plan.data.treatment.file.clone(),
-        sha256: sha256_hex(&inputs.allocation_bytes),
-        bytes: inputs.allocation_bytes.len() as u64,
-    });
+    if let Some(bytes) = &inputs.allocation_bytes {
+        list.push(Input { role: "allocation", file: plan.data.treatment.file.clone(), sha256: sha256_hex(bytes), bytes: bytes.len() as u64 });
+    }
+    if let Some(dry_run) = &inputs.dry_run {
+        list.push(Input { role: "dry-run record", file: dry_run.file_name.clone(), sha256: sha256_hex(&dry_run.bytes), bytes: dry_run.bytes.len() as u64 });
+    }
     for (name, text) in report::TEMPLATES {
         list.push(Input { role: "template", file: format!("templates/{name}"), sha256: sha256_hex(text.as_bytes()), bytes: text.len() as u64 });
     }
@@ -358,6 +484,7 @@ fn fill(result: &mut AnalysisResult, inference: &AnalysisInference, arms: &[plan
             term: row.term.clone(),
             category: row.category.clone(),
             aliased: row.estimate.is_none(),
+            masked: false,
             estimate: row.estimate.as_ref().map(EstimateInfo::from),
         })
         .collect();
@@ -506,7 +633,7 @@ fn apply_multiplicity(plan: &Plan, spec: &plan::MultiplicitySpec, analyses: &[An
             contrast: plan.analyses[hypothesis.analysis].contrasts[hypothesis.contrast].id.clone(),
             initial_weight: hypothesis.weight,
             raw_p: result.raw_p,
-            adjusted_p: result.adjusted_p,
+            adjusted_p: Some(result.adjusted_p),
             rejected: result.rejected,
             rejection_step: result.rejection_step,
             analysis_failed: result.analysis_failed,
@@ -537,6 +664,7 @@ fn apply_multiplicity(plan: &Plan, spec: &plan::MultiplicitySpec, analyses: &[An
         ),
     };
     Ok(MultiplicityResult {
+        masked: false,
         procedure: spec.procedure.name(),
         alpha: spec.alpha,
         sides,
@@ -545,4 +673,101 @@ fn apply_multiplicity(plan: &Plan, spec: &plan::MultiplicitySpec, analyses: &[An
         graph_steps,
         transitions: if spec.procedure == crate::multiplicity::Procedure::Graphical { spec.transitions.clone() } else { Vec::new() },
     })
+}
+
+/// The entry of an analysis left out by `--only`.
+fn not_run(plan: &Plan, analysis: &Analysis) -> AnalysisResult {
+    let arms = plan.data.treatment.arms.len();
+    let variable = &plan.variables[analysis.endpoint.variable];
+    AnalysisResult {
+        id: analysis.id.clone(),
+        title: analysis.title.clone(),
+        role: analysis.role.name(),
+        population: plan.populations[analysis.population].id.clone(),
+        endpoint: EndpointInfo {
+            column: variable.name.clone(),
+            label: variable.display_name().to_string(),
+            kind: analysis.endpoint.kind.name(),
+            higher_is: match analysis.endpoint.higher_is {
+                plan::Direction::Better => "better",
+                plan::Direction::Worse => "worse",
+            },
+            event: None,
+        },
+        model: ModelInfo { family: analysis.model.family_name(), description: String::new(), details: String::new() },
+        covariates: Vec::new(),
+        strata: Vec::new(),
+        confidence_level: analysis.confidence_level,
+        in_population_per_arm: vec![0; arms],
+        analysed_per_arm: vec![0; arms],
+        exclusions: Vec::new(),
+        pooling: Vec::new(),
+        status: "not run",
+        failure: Some("not run: left out by --only on the command line".to_string()),
+        fit: None,
+        coefficients: Vec::new(),
+        treatment_tests: Vec::new(),
+        treatment_test_failure: None,
+        contrasts: Vec::new(),
+        adjusted_means: Vec::new(),
+        marginal: None,
+        marginal_failure: None,
+        checks: Vec::new(),
+        fallback_used: None,
+    }
+}
+
+/// Hide every number that compares arms: in a dry run the arms are dummy
+/// codes, and the shell report must show the layout without estimates.
+fn mask_for_dry_run(results: &mut Results) {
+    const MASKED: &str = "masked in the dry run";
+    for analysis in &mut results.analyses {
+        for coefficient in &mut analysis.coefficients {
+            if coefficient.term == "treatment" {
+                coefficient.estimate = None;
+                coefficient.masked = true;
+            }
+        }
+        analysis.treatment_tests.clear();
+        analysis.treatment_test_failure = Some(MASKED.to_string());
+        for contrast in &mut analysis.contrasts {
+            contrast.estimate = None;
+            contrast.ratio = None;
+            contrast.failure = Some(MASKED.to_string());
+        }
+        for mean in &mut analysis.adjusted_means {
+            mean.estimate = None;
+            mean.failure = Some(MASKED.to_string());
+        }
+        if analysis.marginal.is_some() {
+            analysis.marginal = None;
+            analysis.marginal_failure = Some(MASKED.to_string());
+        }
+        for check in &mut analysis.checks {
+            let about_treatment = check.name.contains("Mantel") || check.name.contains("Treatment-by-stratum");
+            check.rows.retain(|row| !about_treatment && row.term != "treatment");
+            check.details.retain(|detail| !detail.contains("odds ratio of"));
+            if about_treatment {
+                check.verdict = MASKED.to_string();
+                check.failed = false;
+            }
+        }
+        // Data checks stay; the fit's summary statistics describe the dummy model only.
+        if let Some(fit) = &mut analysis.fit {
+            fit.log_likelihood = None;
+            fit.deviance = None;
+        }
+    }
+    if let Some(family) = &mut results.multiplicity {
+        family.masked = true;
+        for hypothesis in &mut family.hypotheses {
+            hypothesis.raw_p = None;
+            hypothesis.adjusted_p = None;
+            hypothesis.rejected = false;
+            hypothesis.rejection_step = None;
+        }
+        family.tests.clear();
+        family.graph_steps.clear();
+    }
+    results.deviations.retain(|deviation| deviation.code != "HYPOTHESIS-UNTESTABLE" && deviation.code != "CHECK-FAILED");
 }

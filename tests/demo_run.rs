@@ -10,12 +10,25 @@ mod common;
 
 use common::{cairn, copy_tree, read_json, root, Scratch};
 
+/// A copy of the demo study as committed: the plan, its lock record if any,
+/// and the data (not the audit log or dry-run record a local run may leave).
+fn demo_copy(label: &str) -> Scratch {
+    let study = Scratch::new(label);
+    for file in ["plan.yaml", "plan.lock.yaml"] {
+        let source = root().join("plans/demo").join(file);
+        if source.exists() {
+            std::fs::copy(&source, study.path.join(file)).expect("copy demo file");
+        }
+    }
+    copy_tree(&root().join("plans/demo/data"), &study.path.join("data"));
+    study
+}
+
 const GOLDEN_FILES: [&str; 3] = ["report.md", "report.html", "results.json"];
 
 #[test]
 fn the_demo_matches_its_golden_outputs() {
-    let study = Scratch::new("demo");
-    copy_tree(&root().join("plans/demo"), &study.path);
+    let study = demo_copy("demo");
     let outcome = cairn(&study.path, &["run", "plan.yaml", "--out", "out"]);
     assert_eq!(outcome.code, 0, "{}", outcome.stderr);
     let golden = root().join("golden");
@@ -39,8 +52,7 @@ fn the_demo_matches_its_golden_outputs() {
 
 #[test]
 fn the_demo_report_prints_the_hash_of_the_plan_and_a_complete_manifest() {
-    let study = Scratch::new("demo-hash");
-    copy_tree(&root().join("plans/demo"), &study.path);
+    let study = demo_copy("demo-hash");
     assert_eq!(cairn(&study.path, &["run", "plan.yaml", "--out", "out"]).code, 0);
     let plan_hash = cairn::provenance::sha256_hex(&std::fs::read(root().join("plans/demo/plan.yaml")).expect("plan"));
     let report = std::fs::read_to_string(study.path.join("out/report.md")).expect("report");

@@ -14,9 +14,11 @@
 //! decides which subjects an analysis uses (that is `design`'s job).
 
 mod csv_table;
+mod dummy;
 mod typing;
 
 pub use csv_table::{read_table, Table};
+pub use dummy::{dummy_allocation, dummy_allocation_name};
 pub use typing::{assemble, Column, JoinSummary, StudyData};
 
 use crate::error::{Error, ErrorKind, Location, Problem};

@@ -47,6 +47,9 @@ pub struct StudyData {
     /// One column per plan variable, in the plan's order.
     pub columns: Vec<Column>,
     pub join: JoinSummary,
+    /// Values outside a variable's declared range, per variable: (variable,
+    /// count, the first few locations as "file:line").
+    pub out_of_range: Vec<(String, usize, Vec<String>)>,
 }
 
 struct Collector {
@@ -158,6 +161,15 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
         columns.push(type_column(&variable.kind, subjects, column, &matched_rows, &plan.data.missing_codes, &mut collector));
     }
     collector.finish()?;
+    let mut out_of_range = Vec::new();
+    for (variable, column) in plan.variables.iter().zip(&columns) {
+        let (Some((low, high)), Column::Numeric(values)) = (variable.range, column) else { continue };
+        let outside: Vec<usize> = values.iter().enumerate().filter(|(_, value)| value.is_some_and(|value| value < low || value > high)).map(|(row, _)| row).collect();
+        if !outside.is_empty() {
+            let places = outside.iter().take(3).map(|&row| format!("{}:{}", subjects.file, subjects.lines[matched_rows[row]])).collect();
+            out_of_range.push((variable.name.clone(), outside.len(), places));
+        }
+    }
     let join = JoinSummary {
         subjects_rows: subjects.rows.len(),
         allocation_rows: allocation.rows.len(),
@@ -165,7 +177,7 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
         only_in_subjects,
         only_in_allocation,
     };
-    Ok(StudyData { subject_ids, arms, columns, join })
+    Ok(StudyData { subject_ids, arms, columns, join, out_of_range })
 }
 
 fn require_column(table: &Table, name: &str, role: &str, collector: &mut Collector) -> Option<usize> {

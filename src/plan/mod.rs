@@ -132,6 +132,9 @@ pub struct Variable {
     pub name: String,
     pub kind: VariableKind,
     pub label: Option<String>,
+    /// For numeric and count variables: the plausible range. Values outside
+    /// are kept but reported as deviation `VALUE-OUT-OF-RANGE`.
+    pub range: Option<(f64, f64)>,
 }
 
 impl Variable {
@@ -197,6 +200,9 @@ pub struct Analysis {
     /// Level at which a check's p-value counts as a failed assumption.
     pub check_level: f64,
     pub supportive: Vec<Supportive>,
+    /// The largest share of the population that may be left out for missing
+    /// values before the run flags deviation `MISSING-ABOVE-PLAN`.
+    pub max_excluded: Option<f64>,
     /// Where the analysis is written in the plan, for errors found later
     /// (an arm with no analysed subjects is reported at its analysis).
     pub origin: Location,

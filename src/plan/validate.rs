@@ -553,7 +553,27 @@ fn read_variables(reader: &mut Reader<'_>, node: &Node, path: &str) -> Vec<Varia
         if reader.identifier(key_node, &entry_path).is_none() {
             continue;
         }
-        let Some(fields) = reader.mapping(definition, &entry_path, &["kind", "levels", "label"], &["kind"]) else { continue };
+        let Some(fields) = reader.mapping(definition, &entry_path, &["kind", "levels", "label", "range"], &["kind"]) else { continue };
+        let range = fields.get("range").and_then(|value| {
+            let items = reader.list(value, &fields.child("range"))?;
+            if items.len() != 2 {
+                reader.report(ErrorKind::PlanSchema, value, &fields.child("range"), format!("a range is [lowest, highest]; found {} values", items.len()));
+                return None;
+            }
+            let low = reader.number(&items[0], &format!("{}[0]", fields.child("range")))?;
+            let high = reader.number(&items[1], &format!("{}[1]", fields.child("range")))?;
+            if low > high {
+                reader.report(ErrorKind::PlanSchema, value, &fields.child("range"), format!("the range's lowest value {low} is above its highest {high}"));
+                return None;
+            }
+            Some((low, high))
+        });
+        if let (Some(range_node), Some(kind_node)) = (fields.get("range"), fields.get("kind")) {
+            if !matches!(kind_node.as_scalar(), Some(("numeric" | "count", _))) {
+                reader.report(ErrorKind::PlanSchema, range_node, &fields.child("range"), "a range belongs to numeric and count variables only".to_string());
+                continue;
+            }
+        }
         let label = fields.get("label").and_then(|value| reader.text(value, &fields.child("label")));
         let levels = fields.get("levels").and_then(|value| {
             let levels = reader.text_list(value, &fields.child("levels"))?;
@@ -594,7 +614,7 @@ fn read_variables(reader: &mut Reader<'_>, node: &Node, path: &str) -> Vec<Varia
             _ => None,
         };
         if let Some(kind) = kind {
-            variables.push(Variable { name: name.to_string(), kind, label });
+            variables.push(Variable { name: name.to_string(), kind, label, range });
         }
     }
     variables
@@ -791,6 +811,7 @@ const ANALYSIS_KEYS: &[&str] = &[
     "checks",
     "check-level",
     "supportive",
+    "max-excluded",
 ];
 
 fn read_analyses(
@@ -931,6 +952,17 @@ fn read_analysis(
         (Some(value), Some(model), Some(endpoint)) => read_supportive(reader, value, &fields.child("supportive"), model, endpoint, variables, has_strata),
         _ => None,
     };
+    let max_excluded = match fields.get("max-excluded") {
+        None => Some(None),
+        Some(value) => match reader.number(value, &fields.child("max-excluded")) {
+            Some(share) if (0.0..=1.0).contains(&share) => Some(Some(share)),
+            Some(share) => {
+                reader.report(ErrorKind::PlanSchema, value, &fields.child("max-excluded"), format!("a share of the population lies between 0 and 1; found {share}"));
+                None
+            }
+            None => None,
+        },
+    };
     let id = id?;
     Some(Analysis {
         title: title.unwrap_or_else(|| id.clone()),
@@ -948,6 +980,7 @@ fn read_analysis(
         checks: checks?,
         check_level: check_level?,
         supportive: supportive?,
+        max_excluded: max_excluded?,
         origin: reader.location(node, path),
     })
 }

@@ -11,6 +11,9 @@
 //! This module reads and writes the lock file and computes hashes; it never
 //! looks inside data or results.
 
+pub mod audit;
+pub mod dry_run;
+pub mod history;
 pub mod lock;
 
 use sha2::{Digest, Sha256};

@@ -5,11 +5,16 @@
 
 use super::format::*;
 use super::CAUTION;
+
+/// The text a dry run puts in place of every number that compares arms.
+const MASKED: &str = "masked in the dry run";
 use crate::results::*;
 use serde::Serialize;
 
 #[derive(Serialize)]
 pub struct Context {
+    /// A banner for dry runs and partial runs; `None` for a full unblinded run.
+    run_banner: Option<String>,
     study_id: String,
     study_title: String,
     tool_version: &'static str,
@@ -220,7 +225,15 @@ pub fn build(results: &Results) -> Context {
 
     let analyses: Vec<AnalysisView> = results.analyses.iter().enumerate().map(|(index, analysis)| analysis_view(index + 1, analysis, results, &arm_label)).collect();
     let multiplicity = results.multiplicity.as_ref().map(|family| multiplicity_view(analyses.len() + 3, family, results, &arm_label));
+    let run_banner = match (results.run.mode, results.run.seed) {
+        ("dry-run", Some(seed)) => Some(format!(
+            "**Blinded dry run (shell report).** Treatment codes are dummy codes (seed {seed}, balanced within strata); the allocation file was not read. Every treatment estimate, confidence interval, test of treatment and multiplicity decision is masked; data checks and convergence are shown."
+        )),
+        _ if !results.run.only.is_empty() => Some(format!("**Partial run.** Only these analyses were run, by command-line override: {}.", markdown_text(&results.run.only.join(", ")))),
+        _ => None,
+    };
     Context {
+        run_banner,
         study_id: markdown_text(&results.study.id),
         study_title: markdown_text(&results.study.title),
         tool_version: results.tool.version,
@@ -303,9 +316,11 @@ fn multiplicity_view(section: usize, family: &MultiplicityResult, results: &Resu
             id: markdown_text(&hypothesis.id),
             comparison: comparison_of(hypothesis),
             weight: share(hypothesis.initial_weight),
-            raw_p: hypothesis.raw_p.map(p_value).unwrap_or_else(|| "none".to_string()),
-            adjusted_p: p_value(hypothesis.adjusted_p),
-            decision: if hypothesis.analysis_failed {
+            raw_p: hypothesis.raw_p.map(p_value).unwrap_or_else(|| if family.masked { "masked".to_string() } else { "none".to_string() }),
+            adjusted_p: hypothesis.adjusted_p.map(p_value).unwrap_or_else(|| "masked".to_string()),
+            decision: if family.masked {
+                "masked (dry run)".to_string()
+            } else if hypothesis.analysis_failed {
                 "cannot be rejected: its analysis failed".to_string()
             } else if hypothesis.rejected {
                 match hypothesis.rejection_step {
@@ -375,7 +390,9 @@ fn multiplicity_view(section: usize, family: &MultiplicityResult, results: &Resu
         })
         .collect();
     let rejected = family.hypotheses.iter().filter(|hypothesis| hypothesis.rejected).count();
-    let conclusion = if remaining.is_empty() {
+    let conclusion = if family.masked {
+        "The decisions are masked in the dry run; the strategy above is what the run will apply.".to_string()
+    } else if remaining.is_empty() {
         format!("All {rejected} hypotheses are rejected at familywise level {}.", family.alpha)
     } else if family.procedure == "graphical" {
         format!(
@@ -530,6 +547,14 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
                     effect_sentences.push(sentence);
                 }
             }
+            (None, failure) if failure.as_deref() == Some(MASKED) => effects.push(EffectRow {
+                label,
+                category,
+                estimate: "masked".to_string(),
+                standard_error: "masked".to_string(),
+                interval: "masked".to_string(),
+                p_value: "masked".to_string(),
+            }),
             (None, failure) => effects.push(EffectRow {
                 label,
                 category,
@@ -581,6 +606,13 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
                 standard_error: fixed(estimate.standard_error, decimals),
                 interval: interval(estimate.lower, estimate.upper, decimals),
             },
+            None if mean.failure.as_deref() == Some(MASKED) => MeanRow {
+                arm: markdown_text(&arm_label(&mean.arm)),
+                n: analysis.analysed_per_arm[index],
+                estimate: "masked".to_string(),
+                standard_error: "masked".to_string(),
+                interval: "masked".to_string(),
+            },
             None => MeanRow {
                 arm: markdown_text(&arm_label(&mean.arm)),
                 n: analysis.analysed_per_arm[index],
@@ -607,6 +639,7 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
                     p_value: p_value(estimate.p_value),
                     interval: interval(estimate.lower, estimate.upper, decimals.max(3)),
                 },
+                None if row.masked => CoefficientRow { name, estimate: "masked".to_string(), standard_error: String::new(), statistic: String::new(), p_value: String::new(), interval: String::new() },
                 None => CoefficientRow { name, estimate: "aliased".to_string(), standard_error: String::new(), statistic: String::new(), p_value: String::new(), interval: String::new() },
             }
         })
