@@ -177,6 +177,8 @@ pub struct AnalysisResult {
     pub title: String,
     pub role: &'static str,
     pub population: String,
+    /// The estimand as the plan states it (ICH E9(R1)), if it does.
+    pub estimand: Option<EstimandInfo>,
     pub endpoint: EndpointInfo,
     pub model: ModelInfo,
     pub covariates: Vec<VariableInfo>,
@@ -214,6 +216,22 @@ pub struct EndpointInfo {
     pub higher_is: &'static str,
     /// Binary endpoints: the level that counts as the event.
     pub event: Option<String>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct EstimandInfo {
+    pub treatment: String,
+    pub population: String,
+    pub variable: String,
+    pub intercurrent_events: Vec<IntercurrentEventInfo>,
+    pub summary_measure: String,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct IntercurrentEventInfo {
+    pub event: String,
+    /// "treatment policy", "hypothetical", "composite variable", "while on treatment" or "principal stratum".
+    pub strategy: &'static str,
 }
 
 /// A plan variable as named in the data and as labelled in the report.
@@ -417,6 +435,9 @@ pub struct ContrastInfo {
     pub ratio: Option<RatioInfo>,
     /// "Wald" or "profile likelihood".
     pub interval_method: &'static str,
+    /// For contrasts reported per outcome category or per cut-point: the joint
+    /// Wald test over all their rows (the same on every row of the contrast).
+    pub joint_test: Option<TestInfo>,
     pub failure: Option<String>,
 }
 

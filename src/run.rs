@@ -389,6 +389,7 @@ fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &
         title: analysis.title.clone(),
         role: analysis.role.name(),
         population: plan.populations[analysis.population].id.clone(),
+        estimand: analysis.estimand.as_ref().map(estimand_info),
         endpoint: EndpointInfo {
             column: endpoint_variable.name.clone(),
             label: endpoint_variable.display_name().to_string(),
@@ -509,6 +510,7 @@ fn fill(result: &mut AnalysisResult, inference: &AnalysisInference, arms: &[plan
                 _ => None,
             },
             interval_method: contrast.interval_method,
+            joint_test: contrast.joint.as_ref().map(|test| TestInfo { statistic_name: test.statistic_name, statistic: test.statistic, df1: test.df1, df2: test.df2, p_value: test.p_value }),
             failure: contrast.estimate.as_ref().err().cloned(),
         })
         .collect();
@@ -583,9 +585,17 @@ fn manifest(staged: &Staged) -> Result<Vec<u8>, Error> {
 
 /// The p-value of one hypothesis: two-sided as reported with the contrast, or
 /// one-sided in the direction of benefit (the endpoint's `higher-is` says
-/// which sign of arm − versus is benefit). `None` when it cannot be estimated.
+/// which sign of arm − versus is benefit); for a contrast reported per
+/// category or cut-point, the p-value of its joint Wald test. `None` when it
+/// cannot be estimated.
 fn hypothesis_p_value(result: &AnalysisResult, contrast: &str, sides: u32) -> Option<f64> {
-    let contrast = result.contrasts.iter().find(|candidate| candidate.id == contrast)?;
+    let rows: Vec<&ContrastInfo> = result.contrasts.iter().filter(|candidate| candidate.id == contrast).collect();
+    if rows.len() > 1 {
+        // A contrast reported per category or cut-point is tested jointly
+        // (a chi-square test, which has no direction).
+        return rows[0].joint_test.as_ref().map(|test| test.p_value);
+    }
+    let contrast = rows.first()?;
     let estimate = contrast.estimate.as_ref()?;
     if sides == 2 {
         return Some(estimate.p_value);
@@ -684,6 +694,7 @@ fn not_run(plan: &Plan, analysis: &Analysis) -> AnalysisResult {
         title: analysis.title.clone(),
         role: analysis.role.name(),
         population: plan.populations[analysis.population].id.clone(),
+        estimand: analysis.estimand.as_ref().map(estimand_info),
         endpoint: EndpointInfo {
             column: variable.name.clone(),
             label: variable.display_name().to_string(),
@@ -770,4 +781,14 @@ fn mask_for_dry_run(results: &mut Results) {
         family.graph_steps.clear();
     }
     results.deviations.retain(|deviation| deviation.code != "HYPOTHESIS-UNTESTABLE" && deviation.code != "CHECK-FAILED");
+}
+
+fn estimand_info(estimand: &plan::Estimand) -> EstimandInfo {
+    EstimandInfo {
+        treatment: estimand.treatment.clone(),
+        population: estimand.population.clone(),
+        variable: estimand.variable.clone(),
+        intercurrent_events: estimand.intercurrent_events.iter().map(|event| IntercurrentEventInfo { event: event.event.clone(), strategy: event.strategy.name() }).collect(),
+        summary_measure: estimand.summary_measure.clone(),
+    }
 }

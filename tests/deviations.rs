@@ -212,3 +212,52 @@ fn every_documented_code_has_a_test_here() {
         assert!(this_file.matches(&format!("\"{code}\"")).count() >= 1, "no test triggers {code}");
     }
 }
+
+#[test]
+fn partial_proportional_odds_fallback() {
+    // Invented ordinal data in which the high dose pushes subjects out of both
+    // extreme categories (non-proportional odds for treatment).
+    let study = base("dev-ppo");
+    let mut subjects = String::from("USUBJID,SITE,FASFL,BASE,SCORE,GRADE\n");
+    let mut allocation = String::from("USUBJID,ARM\n");
+    let arms = ["placebo", "low", "high"];
+    for index in 0..180 {
+        let arm = arms[index % 3];
+        let draw = (index * 7919 + 13) % 10;
+        let grade = match arm {
+            "high" => ["g2", "g2", "g2", "g2", "g2", "g2", "g2", "g3", "g1", "g2"][draw],
+            "low" => ["g1", "g2", "g3", "g1", "g2", "g3", "g2", "g1", "g3", "g2"][draw],
+            _ => ["g1", "g1", "g3", "g3", "g1", "g2", "g3", "g1", "g3", "g2"][draw],
+        };
+        subjects.push_str(&format!("P{index:03},{},Y,20.0,10.0,{grade}\n", if index % 2 == 0 { "A" } else { "B" }));
+        allocation.push_str(&format!("P{index:03},{arm}\n"));
+    }
+    std::fs::write(study.path.join("data/subjects.csv"), subjects).expect("write");
+    std::fs::write(study.path.join("data/allocation.csv"), allocation).expect("write");
+    edit(&study, "plan.yaml", "  SCORE: {kind: numeric}\n", "  SCORE: {kind: numeric}\n  GRADE: {kind: ordinal, levels: [g1, g2, g3]}\n");
+    edit(&study, "plan.yaml", "endpoint: {column: SCORE, kind: continuous, higher-is: worse}", "endpoint: {column: GRADE, kind: ordinal, higher-is: worse}");
+    edit(&study, "plan.yaml", "model: {family: linear}", "model: {family: cumulative}");
+    edit(&study, "plan.yaml", "    covariates: [BASE]\n", "");
+    edit(&study, "plan.yaml", "    contrasts: each-vs-reference\n", "    contrasts: each-vs-reference\n    checks: [proportional-odds]\n    fallbacks:\n      - {when: non-proportional-odds, use: partial-proportional-odds}\n");
+    std::fs::write(
+        study.path.join("plan.yaml"),
+        std::fs::read_to_string(study.path.join("plan.yaml")).expect("read")
+            + "multiplicity:\n  procedure: bonferroni\n  hypotheses:\n    - {id: H1, analysis: primary, contrast: high-vs-placebo}\n",
+    )
+    .expect("write");
+    let results = run(&study, &["run", "plan.yaml", "--out", "out"]);
+    assert_flagged(&study, &results, "FALLBACK-USED", "minor", "out");
+    let contrasts = results["analyses"][0]["contrasts"].as_array().expect("contrasts");
+    // Two contrasts, each at both cut-points, named by the cut-point.
+    assert_eq!(contrasts.len(), 4);
+    assert_eq!(contrasts[0]["category"], "above g1");
+    assert_eq!(contrasts[1]["category"], "above g2");
+    // The high dose raises the odds above g1 and lowers them above g2.
+    let high_above_g1 = contrasts[2]["estimate"]["estimate"].as_f64().expect("estimate");
+    let high_above_g2 = contrasts[3]["estimate"]["estimate"].as_f64().expect("estimate");
+    assert!(high_above_g1 > 0.0 && high_above_g2 < 0.0, "{high_above_g1} {high_above_g2}");
+    // The hypothesis takes the joint test of the contrast over both cut-points.
+    let joint = contrasts[2]["joint_test"]["p_value"].as_f64().expect("joint p");
+    assert_eq!(results["multiplicity"]["hypotheses"][0]["raw_p"].as_f64(), Some(joint));
+    assert_eq!(contrasts[2]["joint_test"]["df1"].as_f64(), Some(2.0));
+}

@@ -168,7 +168,7 @@ pub fn analyse(design: &Design, analysis: &Analysis, spec: &GlmSpec) -> Result<A
                 (Some(_), Ok(estimate)) => exponentiate(estimate),
                 _ => None,
             };
-            ContrastResult { id: contrast.id.clone(), arm: contrast.arm, versus: contrast.versus, category: None, estimate, ratio, interval_method }
+            ContrastResult { id: contrast.id.clone(), arm: contrast.arm, versus: contrast.versus, category: None, estimate, ratio, interval_method, joint: None }
         })
         .collect();
 

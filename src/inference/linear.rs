@@ -72,7 +72,7 @@ pub fn infer(design: &Design, fit: &LeastSquaresFit, contrasts: &[Contrast], con
                 let value: f64 = weights.iter().zip(&beta).map(|(w, b)| w * b).sum();
                 wald_estimate(value, bilinear(&weights, &covariance, &weights).sqrt(), Some(df), confidence_level)
             });
-            ContrastResult { id: contrast.id.clone(), arm: contrast.arm, versus: contrast.versus, category: None, estimate, ratio: None, interval_method: "Wald" }
+            ContrastResult { id: contrast.id.clone(), arm: contrast.arm, versus: contrast.versus, category: None, estimate, ratio: None, interval_method: "Wald", joint: None }
         })
         .collect();
 

@@ -79,6 +79,9 @@ pub struct ContrastResult {
     pub ratio: Option<RatioEstimate>,
     /// "Wald" or "profile likelihood".
     pub interval_method: &'static str,
+    /// When a planned contrast has one row per outcome category or cut-point:
+    /// the joint Wald test of all its rows (used for the contrast's hypothesis).
+    pub joint: Option<JointTest>,
 }
 
 /// Standardised treatment effects: each arm's mean prediction over all
@@ -344,4 +347,17 @@ pub(crate) fn heterogeneity_outcome(name: String, outcome: Result<JointTest, Str
         }
         Err(reason) => CheckOutcome { name, rows: Vec::new(), failed: false, verdict: format!("could not be computed: {reason}"), details: Vec::new() },
     }
+}
+
+/// The joint Wald χ² test that every row of `weights` · θ is zero.
+pub(crate) fn joint_wald(weights: &[Vec<f64>], parameters: &[f64], covariance: &DMatrix<f64>) -> Option<JointTest> {
+    let q = weights.len();
+    if q == 0 {
+        return None;
+    }
+    let values = nalgebra::DVector::from_iterator(q, weights.iter().map(|row| row.iter().zip(parameters).map(|(w, b)| w * b).sum::<f64>()));
+    let middle = DMatrix::from_fn(q, q, |i, j| bilinear(&weights[i], covariance, &weights[j]));
+    let statistic = values.dot(&middle.cholesky()?.solve(&values));
+    let p_value = distributions::chi_square_upper_p(statistic, q as f64)?;
+    Some(JointTest { statistic_name: "Wald chi-square", statistic, df1: q as f64, df2: None, p_value })
 }

@@ -67,6 +67,19 @@ pub fn analyse(design: &Design, analysis: &Analysis, reference_category: usize) 
     let no_alias = vec![false; p];
     let mut contrasts = Vec::new();
     for contrast in &analysis.contrasts {
+        // The contrast across all categories at once, for a hypothesis about it.
+        let joint = contrast_vector(design, &no_alias, contrast.arm, contrast.versus).ok().and_then(|by_column| {
+            let rows: Vec<Vec<f64>> = (0..fit.non_reference_categories.len())
+                .map(|position| {
+                    let mut weights = vec![0.0; parameters.len()];
+                    for (column, weight) in by_column.iter().enumerate() {
+                        weights[position * p + column] = *weight;
+                    }
+                    weights
+                })
+                .collect();
+            super::joint_wald(&rows, &parameters, &covariance)
+        });
         for (position, &category) in fit.non_reference_categories.iter().enumerate() {
             let estimate = contrast_vector(design, &no_alias, contrast.arm, contrast.versus).and_then(|weights_by_column| {
                 let mut weights = vec![0.0; parameters.len()];
@@ -85,9 +98,15 @@ pub fn analyse(design: &Design, analysis: &Analysis, reference_category: usize) 
                 estimate,
                 ratio,
                 interval_method: "Wald",
+                joint: joint.clone(),
             });
         }
     }
+    let checks = if analysis.checks.contains(&crate::plan::Check::TreatmentByStratum) {
+        vec![heterogeneity(design, &response, levels.len(), reference_category, fit.log_likelihood, analysis.check_level)]
+    } else {
+        Vec::new()
+    };
     Ok(AnalysisInference {
         model_words: "A baseline-category (multinomial) logit model was fitted by maximum likelihood (Newton–Raphson with analytic derivatives)".to_string(),
         model_details: format!(
@@ -112,8 +131,31 @@ pub fn analyse(design: &Design, analysis: &Analysis, reference_category: usize) 
         ratio_name: Some("relative-risk ratio"),
         adjusted_means: Vec::new(),
         marginal: None,
-        checks: Vec::new(),
-        findings: Vec::new(),
+        findings: checks
+            .iter()
+            .filter(|check| check.failed)
+            .map(|check| super::Finding { code: "CHECK-FAILED", severity: "minor", message: format!("{}: {}", check.name, check.verdict) })
+            .collect(),
+        checks,
         fallback_used: None,
     })
+}
+
+/// Treatment-by-stratum interaction added to the planned model, tested by
+/// likelihood ratio over all non-reference categories; supportive only.
+fn heterogeneity(design: &Design, response: &[usize], n_categories: usize, reference_category: usize, log_likelihood: Option<f64>, level: f64) -> super::CheckOutcome {
+    let name = "Treatment-by-stratum interaction (supportive)".to_string();
+    let (extended, added) = super::with_interactions(design);
+    let outcome = if added == 0 {
+        Err("no interaction columns could be formed".to_string())
+    } else {
+        fit_multinomial_logit(&extended, response, n_categories, reference_category, None, &MultinomialOptions::default()).map_err(|error| error.to_string()).and_then(|bigger| {
+            match (bigger.log_likelihood, log_likelihood, &bigger.stop_reason) {
+                (Some(bigger_log_likelihood), Some(log_likelihood), StopReason::Converged { .. }) => likelihood_ratio(bigger_log_likelihood, log_likelihood, added * (n_categories - 1)),
+                (_, _, reason) => Err(format!("the interaction model {}", describe_stop(reason, &[]))),
+            }
+        })
+    };
+    let check = super::heterogeneity_outcome(name, outcome, level);
+    check
 }

@@ -157,7 +157,7 @@ pub fn analyse(design: &Design, analysis: &Analysis, link: CumulativeLink) -> Re
     // Tests of treatment; parameter indices are offset by the cut-points.
     let treatment: Vec<usize> = prepared.treatment_columns.iter().flatten().copied().collect();
     let treatment_parameters: Vec<usize> = treatment.iter().map(|column| n_cuts + column).collect();
-    let mut treatment_tests = Vec::new();
+    let mut treatment_tests: Vec<super::JointTest> = Vec::new();
     let mut failures = Vec::new();
     match wald_chi_square(&parameters, &covariance, &treatment_parameters) {
         Ok(test) => treatment_tests.push(test),
@@ -180,7 +180,7 @@ pub fn analyse(design: &Design, analysis: &Analysis, link: CumulativeLink) -> Re
     // Contrasts: L over (cut-points, columns); the design's contrast helper works on the full design.
     let aliased_full: Vec<bool> = (0..design.column_names.len()).map(|column| column > 0 && beta_or_none[column - 1].is_none()).collect();
     let ratio_name = (link == CumulativeLink::Logit).then_some("odds ratio");
-    let contrasts = analysis
+    let contrasts: Vec<ContrastResult> = analysis
         .contrasts
         .iter()
         .map(|contrast| {
@@ -196,9 +196,27 @@ pub fn analyse(design: &Design, analysis: &Analysis, link: CumulativeLink) -> Re
                 (Some(_), Ok(estimate)) => super::exponentiate(estimate),
                 _ => None,
             };
-            ContrastResult { id: contrast.id.clone(), arm: contrast.arm, versus: contrast.versus, category: None, estimate, ratio, interval_method: "Wald" }
+            ContrastResult { id: contrast.id.clone(), arm: contrast.arm, versus: contrast.versus, category: None, estimate, ratio, interval_method: "Wald", joint: None }
         })
         .collect();
+
+    // The planned fallback for non-proportional odds in the treatment term.
+    let mut contrasts = contrasts;
+    let mut treatment_tests = treatment_tests;
+    let mut model_words_extra = String::new();
+    if analysis.fallbacks.contains(&Fallback::PartialProportionalOdds) {
+        if let Some(partial) = partial_proportional_odds(design, analysis, &prepared, &kept, &model, &options) {
+            let message = partial.message.clone();
+            findings.push(Finding { code: "FALLBACK-USED", severity: "minor", message: message.clone() });
+            fallback_used = Some(match fallback_used.take() {
+                Some(earlier) => format!("{earlier}; {message}"),
+                None => message,
+            });
+            contrasts = partial.contrasts;
+            treatment_tests = partial.tests;
+            model_words_extra = " The treatment effect was then allowed to vary by cut-point (partial proportional odds), as planned; each comparison is reported at every cut-point as the odds ratio of being above it.".to_string();
+        }
+    }
 
     let mut checks = Vec::new();
     if analysis.checks.contains(&Check::ProportionalOdds) {
@@ -224,7 +242,7 @@ pub fn analyse(design: &Design, analysis: &Analysis, link: CumulativeLink) -> Re
         prepared.levels.len(),
         prepared.levels.join(" < "),
         if link == CumulativeLink::Logit { " and exp(β) is the common odds ratio of being in a higher category" } else { "" }
-    );
+    ) + &model_words_extra;
     Ok(AnalysisInference {
         model_words,
         model_details,
@@ -427,4 +445,99 @@ fn mantel_haenszel(design: &Design, prepared: &Prepared, scores: Option<&[f64]>)
         }
         Err(reason) => CheckOutcome { name, rows: Vec::new(), failed: false, verdict: format!("could not be computed: {reason}"), details: Vec::new() },
     }
+}
+
+/// What the partial-proportional-odds fallback produced.
+struct PartialOdds {
+    contrasts: Vec<ContrastResult>,
+    tests: Vec<super::JointTest>,
+    message: String,
+}
+
+/// When the likelihood-ratio test of proportional odds for the treatment term
+/// fails at the plan's check level, refit with cut-point-specific treatment
+/// effects (g(P(Y ≤ j)) = θⱼ − xᵀβ − zᵀγⱼ, z the treatment indicators) and
+/// report each contrast at every cut-point; `None` when the check passes or
+/// the refit does not converge (the proportional-odds results then stand).
+fn partial_proportional_odds(design: &Design, analysis: &Analysis, prepared: &Prepared, kept: &[usize], model: &CumulativeLinkFit, options: &CumulativeLinkOptions) -> Option<PartialOdds> {
+    let n_categories = prepared.levels.len();
+    if n_categories < 3 {
+        return None;
+    }
+    let matrix = prepared.matrix.select_columns(kept);
+    // Positions (within the kept columns) of the arms' indicators.
+    let arm_position: Vec<Option<usize>> = prepared.treatment_columns.iter().map(|column| column.and_then(|column| kept.iter().position(|&kept_column| kept_column == column))).collect();
+    let nominal: Vec<usize> = arm_position.iter().flatten().copied().collect();
+    let fit = fit_nominal_effects(&matrix, &prepared.response, n_categories, None, &nominal, options).ok()?;
+    if !matches!(fit.stop_reason, StopReason::Converged { .. }) {
+        return None;
+    }
+    let (full, base) = (fit.log_likelihood?, model.log_likelihood?);
+    let df = (n_categories - 2) * nominal.len();
+    let statistic = (2.0 * (full - base)).max(0.0);
+    let p_value = chi_square_upper_p(statistic, df as f64)?;
+    if p_value >= analysis.check_level {
+        return None;
+    }
+    let covariance = fit.covariance.clone()?;
+    let n_cuts = n_categories - 1;
+    let k = nominal.len();
+    // Parameters: cut-points, then γ cut-point by cut-point (k each), then the common β.
+    let mut parameters = fit.cut_points.clone();
+    for cut in 0..n_cuts {
+        for position in 0..k {
+            parameters.push(fit.nominal_coefficients[(cut, position)]);
+        }
+    }
+    parameters.extend(&fit.coefficients);
+    let gamma_index = |cut: usize, arm: usize| -> Option<usize> {
+        let column = arm_position[arm]?;
+        let position = nominal.iter().position(|&nominal_column| nominal_column == column)?;
+        Some(n_cuts + cut * k + position)
+    };
+    let mut contrasts = Vec::new();
+    for contrast in &analysis.contrasts {
+        let rows: Vec<Vec<f64>> = (0..n_cuts)
+            .map(|cut| {
+                let mut weights = vec![0.0; parameters.len()];
+                if let Some(index) = gamma_index(cut, contrast.arm) {
+                    weights[index] += 1.0;
+                }
+                if let Some(index) = gamma_index(cut, contrast.versus) {
+                    weights[index] -= 1.0;
+                }
+                weights
+            })
+            .collect();
+        let joint = super::joint_wald(&rows, &parameters, &covariance);
+        for (cut, weights) in rows.iter().enumerate() {
+            let value: f64 = weights.iter().zip(&parameters).map(|(w, b)| w * b).sum();
+            let estimate = wald_estimate(value, bilinear(weights, &covariance, weights).sqrt(), None, analysis.confidence_level);
+            let ratio = estimate.as_ref().ok().and_then(super::exponentiate);
+            contrasts.push(ContrastResult {
+                id: contrast.id.clone(),
+                arm: contrast.arm,
+                versus: contrast.versus,
+                category: Some(format!("above {}", prepared.levels[cut])),
+                estimate,
+                ratio,
+                interval_method: "Wald",
+                joint: joint.clone(),
+            });
+        }
+    }
+    let all_treatment: Vec<usize> = (0..n_cuts).flat_map(|cut| (0..k).map(move |position| n_cuts + cut * k + position)).collect();
+    let mut tests = Vec::new();
+    if let Ok(test) = wald_chi_square(&parameters, &covariance, &all_treatment) {
+        tests.push(test);
+    }
+    let _ = design;
+    Some(PartialOdds {
+        contrasts,
+        tests,
+        message: format!(
+            "the proportional-odds assumption failed for treatment (likelihood ratio {statistic:.2} on {df} df, p = {p_value:.4}, below {}); as planned, the treatment effect was allowed to vary by cut-point",
+            analysis.check_level
+        ),
+    })
 }

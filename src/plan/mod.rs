@@ -203,6 +203,8 @@ pub struct Analysis {
     /// The largest share of the population that may be left out for missing
     /// values before the run flags deviation `MISSING-ABOVE-PLAN`.
     pub max_excluded: Option<f64>,
+    /// The estimand this analysis targets (ICH E9(R1)), when the plan states it.
+    pub estimand: Option<Estimand>,
     /// Where the analysis is written in the plan, for errors found later
     /// (an arm with no analysed subjects is reported at its analysis).
     pub origin: Location,
@@ -332,6 +334,45 @@ pub struct GlmSpec {
     pub profile_intervals: bool,
 }
 
+/// The five attributes of an estimand (ICH E9(R1), section A.3.2).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Estimand {
+    pub treatment: String,
+    pub population: String,
+    pub variable: String,
+    pub intercurrent_events: Vec<IntercurrentEvent>,
+    pub summary_measure: String,
+}
+
+/// An intercurrent event and the strategy that addresses it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct IntercurrentEvent {
+    pub event: String,
+    pub strategy: IntercurrentStrategy,
+}
+
+/// The strategies of ICH E9(R1), section A.3.3.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum IntercurrentStrategy {
+    TreatmentPolicy,
+    Hypothetical,
+    Composite,
+    WhileOnTreatment,
+    PrincipalStratum,
+}
+
+impl IntercurrentStrategy {
+    pub fn name(self) -> &'static str {
+        match self {
+            IntercurrentStrategy::TreatmentPolicy => "treatment policy",
+            IntercurrentStrategy::Hypothetical => "hypothetical",
+            IntercurrentStrategy::Composite => "composite variable",
+            IntercurrentStrategy::WhileOnTreatment => "while on treatment",
+            IntercurrentStrategy::PrincipalStratum => "principal stratum",
+        }
+    }
+}
+
 /// A pre-specified alternative used when its condition occurs; using it is a
 /// deviation of the mildest kind, planned but reported.
 #[derive(Debug, Clone, PartialEq)]
@@ -343,6 +384,10 @@ pub enum Fallback {
     /// Ordinal: merge an outcome category that is empty in the analysed subjects with its
     /// neighbour (the next higher one, or the next lower one for the top category).
     MergeEmptyCategory,
+    /// Cumulative logit: when the proportional-odds likelihood-ratio check fails for the
+    /// treatment term at the check level, let the treatment effect vary by cut-point
+    /// (partial proportional odds) and report the treatment odds ratio at each cut-point.
+    PartialProportionalOdds,
 }
 
 /// Supportive checks of the model's assumptions, reported beside the planned model.

@@ -812,6 +812,7 @@ const ANALYSIS_KEYS: &[&str] = &[
     "check-level",
     "supportive",
     "max-excluded",
+    "estimand",
 ];
 
 fn read_analyses(
@@ -963,6 +964,10 @@ fn read_analysis(
             None => None,
         },
     };
+    let estimand = match fields.get("estimand") {
+        None => Some(None),
+        Some(value) => read_estimand(reader, value, &fields.child("estimand")).map(Some),
+    };
     let id = id?;
     Some(Analysis {
         title: title.unwrap_or_else(|| id.clone()),
@@ -981,6 +986,7 @@ fn read_analysis(
         check_level: check_level?,
         supportive: supportive?,
         max_excluded: max_excluded?,
+        estimand: estimand?,
         origin: reader.location(node, path),
     })
 }
@@ -1228,10 +1234,10 @@ fn read_fallbacks(reader: &mut Reader<'_>, node: &Node, path: &str, model: &Mode
             complete = false;
             continue;
         };
-        let when = fields.get("when").and_then(|value| reader.choice(value, &fields.child("when"), &[("separation", 0), ("overdispersion", 1), ("empty-category", 2)]));
+        let when = fields.get("when").and_then(|value| reader.choice(value, &fields.child("when"), &[("separation", 0), ("overdispersion", 1), ("empty-category", 2), ("non-proportional-odds", 3)]));
         let remedy = fields
             .get("use")
-            .and_then(|value| reader.choice(value, &fields.child("use"), &[("firth", 0), ("negative-binomial", 1), ("merge-with-neighbour", 2)]));
+            .and_then(|value| reader.choice(value, &fields.child("use"), &[("firth", 0), ("negative-binomial", 1), ("merge-with-neighbour", 2), ("partial-proportional-odds", 3)]));
         let (Some(when), Some(remedy)) = (when, remedy) else {
             complete = false;
             continue;
@@ -1279,12 +1285,19 @@ fn read_fallbacks(reader: &mut Reader<'_>, node: &Node, path: &str, model: &Mode
                     None
                 }
             },
+            (3, 3) => match model {
+                ModelSpec::Cumulative { link: crate::models::ordinal::CumulativeLink::Logit } => Some(Fallback::PartialProportionalOdds),
+                _ => {
+                    reader.report(ErrorKind::PlanSchema, item, &item_path, "the partial-proportional-odds fallback applies to a cumulative logit model".to_string());
+                    None
+                }
+            },
             _ => {
                 reader.report(
                     ErrorKind::PlanSchema,
                     item,
                     &item_path,
-                    "this remedy does not answer this condition; plannable pairs are separation → firth, overdispersion → negative-binomial, empty-category → merge-with-neighbour"
+                    "this remedy does not answer this condition; plannable pairs are separation → firth, overdispersion → negative-binomial, empty-category → merge-with-neighbour, non-proportional-odds → partial-proportional-odds"
                         .to_string(),
                 );
                 None
@@ -1505,4 +1518,47 @@ fn read_contrasts(reader: &mut Reader<'_>, node: &Node, path: &str, treatment: &
         }
     }
     complete.then_some(contrasts)
+}
+
+fn read_estimand(reader: &mut Reader<'_>, node: &Node, path: &str) -> Option<Estimand> {
+    const KEYS: &[&str] = &["treatment", "population", "variable", "intercurrent-events", "summary-measure"];
+    let fields = reader.mapping(node, path, KEYS, KEYS)?;
+    let text = |reader: &mut Reader<'_>, key: &str| fields.get(key).and_then(|value| reader.text(value, &fields.child(key)));
+    let treatment = text(reader, "treatment");
+    let population = text(reader, "population");
+    let variable = text(reader, "variable");
+    let summary_measure = text(reader, "summary-measure");
+    let events_node = fields.get("intercurrent-events")?;
+    let items = reader.list(events_node, &fields.child("intercurrent-events"))?;
+    let mut intercurrent_events = Vec::new();
+    let mut complete = true;
+    for (index, item) in items.iter().enumerate() {
+        let item_path = format!("{}[{index}]", fields.child("intercurrent-events"));
+        let Some(entry) = reader.mapping(item, &item_path, &["event", "strategy"], &["event", "strategy"]) else {
+            complete = false;
+            continue;
+        };
+        let event = entry.get("event").and_then(|value| reader.text(value, &entry.child("event")));
+        let strategy = entry.get("strategy").and_then(|value| {
+            reader.choice(
+                value,
+                &entry.child("strategy"),
+                &[
+                    ("treatment-policy", IntercurrentStrategy::TreatmentPolicy),
+                    ("hypothetical", IntercurrentStrategy::Hypothetical),
+                    ("composite", IntercurrentStrategy::Composite),
+                    ("while-on-treatment", IntercurrentStrategy::WhileOnTreatment),
+                    ("principal-stratum", IntercurrentStrategy::PrincipalStratum),
+                ],
+            )
+        });
+        match (event, strategy) {
+            (Some(event), Some(strategy)) => intercurrent_events.push(IntercurrentEvent { event, strategy }),
+            _ => complete = false,
+        }
+    }
+    if !complete {
+        return None;
+    }
+    Some(Estimand { treatment: treatment?, population: population?, variable: variable?, intercurrent_events, summary_measure: summary_measure? })
 }

@@ -78,6 +78,7 @@ struct FlowRow {
 
 #[derive(Serialize)]
 struct AnalysisView {
+    estimand: Option<EstimandView>,
     number: usize,
     id: String,
     title: String,
@@ -91,6 +92,7 @@ struct AnalysisView {
     effect_header: String,
     se_header: String,
     has_category: bool,
+    category_header: &'static str,
     /// The id of the analysis's forest plot in the HTML report.
     figure: Option<String>,
     marginal: Option<MarginalView>,
@@ -103,6 +105,15 @@ struct AnalysisView {
     fit_line: Option<String>,
     checks: Vec<CheckView>,
     aliased: Vec<String>,
+}
+
+#[derive(Serialize)]
+struct EstimandView {
+    treatment: String,
+    population: String,
+    variable: String,
+    events: Vec<(String, &'static str)>,
+    summary_measure: String,
 }
 
 #[derive(Serialize)]
@@ -740,7 +751,15 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         (None, Some(reason)) => Some(MarginalView { sentence: String::new(), means: Vec::new(), effects: Vec::new(), failure: Some(markdown_text(reason)) }),
         (None, None) => None,
     };
+    let estimand = analysis.estimand.as_ref().map(|estimand| EstimandView {
+        treatment: markdown_text(&estimand.treatment),
+        population: markdown_text(&estimand.population),
+        variable: markdown_text(&estimand.variable),
+        events: estimand.intercurrent_events.iter().map(|event| (markdown_text(&event.event), event.strategy)).collect(),
+        summary_measure: markdown_text(&estimand.summary_measure),
+    });
     AnalysisView {
+        estimand,
         marginal,
         number,
         id: markdown_text(&analysis.id),
@@ -755,6 +774,7 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         effect_header,
         se_header,
         has_category: analysis.contrasts.iter().any(|contrast| contrast.category.is_some()),
+        category_header: if analysis.endpoint.kind == "ordinal" { "Cut-point" } else { "Category vs reference" },
         figure: (analysis.contrasts.iter().any(|contrast| contrast.estimate.is_some())).then(|| format!("forest-{number}")),
         effects,
         effect_sentences,
