@@ -171,7 +171,7 @@ struct EffectRow {
 #[derive(Serialize)]
 struct MeanRow {
     arm: String,
-    n: usize,
+    n: String,
     estimate: String,
     standard_error: String,
     interval: String,
@@ -213,16 +213,16 @@ pub fn build(results: &Results) -> Context {
     let sides = if results.study.sides == 1 { "one-sided" } else { "two-sided" };
     let alpha_sentence = format!("Familywise significance level {} ({sides}).", results.study.alpha);
 
-    let total = |cells: &[usize]| cells.iter().sum::<usize>().to_string();
+    let total = |cells: &[usize]| count(cells.iter().sum::<usize>());
     let mut flow = vec![FlowRow {
         label: "Randomised (in both files)".to_string(),
-        cells: results.subjects.randomised_per_arm.iter().map(usize::to_string).collect(),
+        cells: results.subjects.randomised_per_arm.iter().map(|value| count(*value)).collect(),
         total: total(&results.subjects.randomised_per_arm),
     }];
     for population in &results.subjects.populations {
         flow.push(FlowRow {
             label: markdown_text(&population.label),
-            cells: population.per_arm.iter().map(usize::to_string).collect(),
+            cells: population.per_arm.iter().map(|value| count(*value)).collect(),
             total: total(&population.per_arm),
         });
     }
@@ -441,10 +441,11 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
     terms.extend(analysis.covariates.iter().map(|variable| markdown_text(&variable.label)));
     terms.extend(analysis.strata.iter().map(|variable| format!("{} (stratum)", markdown_text(&variable.label))));
     let mut methods = format!(
-        "{} to {} in the {} (n = {n_analysed}), with {} as fixed effects. ",
+        "{} to {} in the {} (n = {}), with {} as fixed effects. ",
         markdown_text(&analysis.model.description),
         markdown_text(&analysis.endpoint.label),
         markdown_text(&population_label),
+        count(n_analysed),
         join_words(&terms)
     );
     if !analysis.model.details.is_empty() {
@@ -480,17 +481,17 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
 
     let mut analysis_flow = vec![FlowRow {
         label: format!("In {}", markdown_text(&population_label)),
-        cells: analysis.in_population_per_arm.iter().map(usize::to_string).collect(),
-        total: analysis.in_population_per_arm.iter().sum::<usize>().to_string(),
+        cells: analysis.in_population_per_arm.iter().map(|value| count(*value)).collect(),
+        total: count(analysis.in_population_per_arm.iter().sum::<usize>()),
     }];
     for exclusion in &analysis.exclusions {
         analysis_flow.push(FlowRow {
             label: format!("Excluded: {} missing", markdown_text(&exclusion.missing_label)),
-            cells: exclusion.per_arm.iter().map(usize::to_string).collect(),
-            total: exclusion.per_arm.iter().sum::<usize>().to_string(),
+            cells: exclusion.per_arm.iter().map(|value| count(*value)).collect(),
+            total: count(exclusion.per_arm.iter().sum::<usize>()),
         });
     }
-    analysis_flow.push(FlowRow { label: "Analysed".to_string(), cells: analysis.analysed_per_arm.iter().map(usize::to_string).collect(), total: n_analysed.to_string() });
+    analysis_flow.push(FlowRow { label: "Analysed".to_string(), cells: analysis.analysed_per_arm.iter().map(|value| count(*value)).collect(), total: count(n_analysed) });
     let pooling = analysis
         .pooling
         .iter()
@@ -612,21 +613,21 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         .map(|(index, mean)| match &mean.estimate {
             Some(estimate) => MeanRow {
                 arm: markdown_text(&arm_label(&mean.arm)),
-                n: analysis.analysed_per_arm[index],
+                n: count(analysis.analysed_per_arm[index]),
                 estimate: fixed(estimate.estimate, decimals),
                 standard_error: fixed(estimate.standard_error, decimals),
                 interval: interval(estimate.lower, estimate.upper, decimals),
             },
             None if mean.failure.as_deref() == Some(MASKED) => MeanRow {
                 arm: markdown_text(&arm_label(&mean.arm)),
-                n: analysis.analysed_per_arm[index],
+                n: count(analysis.analysed_per_arm[index]),
                 estimate: "masked".to_string(),
                 standard_error: "masked".to_string(),
                 interval: "masked".to_string(),
             },
             None => MeanRow {
                 arm: markdown_text(&arm_label(&mean.arm)),
-                n: analysis.analysed_per_arm[index],
+                n: count(analysis.analysed_per_arm[index]),
                 estimate: "not estimable".to_string(),
                 standard_error: String::new(),
                 interval: mean.failure.as_deref().map(markdown_text).unwrap_or_default(),
@@ -660,7 +661,7 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         None => "z",
     };
     let fit_line = analysis.fit.as_ref().map(|fit| {
-        let mut parts = vec![format!("n = {}", fit.n_analysed), format!("{} parameters of rank {}", fit.n_parameters, fit.rank)];
+        let mut parts = vec![format!("n = {}", count(fit.n_analysed)), format!("{} parameters of rank {}", fit.n_parameters, fit.rank)];
         if let Some(sd) = fit.residual_sd {
             parts.push(format!("residual SD {} on {} degrees of freedom", fixed(sd, decimals + 1), fit.residual_df.unwrap_or(0)));
         }

@@ -23,6 +23,22 @@ pub fn fixed(value: f64, decimals: usize) -> String {
     }
 }
 
+/// A count with thousands separated by commas from 10 000 on ("12,345"); smaller counts as they are.
+pub fn count(value: usize) -> String {
+    let digits = value.to_string();
+    if value < 10_000 {
+        return digits;
+    }
+    let mut grouped = String::with_capacity(digits.len() + digits.len() / 3);
+    for (index, character) in digits.chars().enumerate() {
+        if index > 0 && (digits.len() - index) % 3 == 0 {
+            grouped.push(',');
+        }
+        grouped.push(character);
+    }
+    grouped
+}
+
 /// A p-value: four decimals, or "< 0.0001".
 pub fn p_value(p: f64) -> String {
     if p < 0.0001 { "< 0.0001".to_string() } else { fixed(p, 4) }
@@ -93,6 +109,9 @@ mod tests {
         assert_eq!(percent(0.95), "95%");
         assert_eq!(percent(0.975), "97.5%");
         assert_eq!(degrees(276.0), "276");
+        assert_eq!(count(9_999), "9999");
+        assert_eq!(count(10_000), "10,000");
+        assert_eq!(count(1_234_567), "1,234,567");
         assert_eq!(markdown_text("<b>x</b> | y"), "\\<b\\>x\\</b\\> \\| y");
         assert_eq!(exact(0.1), "0.1");
         assert_eq!(exact(1e-300), "1e-300");
