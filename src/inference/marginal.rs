@@ -108,8 +108,10 @@
 //! (2002), The American Statistician 56:29–38 (the calculus of M-estimation); Tsiatis (2006),
 //! *Semiparametric Theory and Missing Data*, ch. 3 (influence functions of M-estimators).
 
+#[allow(unused_imports)]
+use crate::models::portable::Portable;
 use nalgebra::DMatrix;
-use statrs::function::erf::erfc;
+use libm::erfc;
 
 use crate::models::glm::{Family, Link};
 
@@ -388,18 +390,18 @@ impl std::error::Error for MarginalError {}
 fn inverse_link(link: Link, eta: f64) -> (f64, f64) {
     match link {
         Link::Logit => {
-            let mean = 1.0 / (1.0 + (-eta).exp());
+            let mean = 1.0 / (1.0 + (-eta).pexp());
             // exp(−|η|)/(1 + exp(−|η|))² is the same derivative without overflow for large |η|.
-            let e = (-eta.abs()).exp();
+            let e = (-eta.abs()).pexp();
             (mean, e / ((1.0 + e) * (1.0 + e)))
         }
         Link::Probit => (
             0.5 * erfc(-eta / std::f64::consts::SQRT_2),
-            (-0.5 * eta * eta).exp() / (2.0 * std::f64::consts::PI).sqrt(),
+            (-0.5 * eta * eta).pexp() / (2.0 * std::f64::consts::PI).sqrt(),
         ),
-        Link::CLogLog => (-(-eta.exp()).exp_m1(), (eta - eta.exp()).exp()),
+        Link::CLogLog => (-(-eta.pexp()).pexp_m1(), (eta - eta.pexp()).pexp()),
         Link::Log => {
-            let mean = eta.exp();
+            let mean = eta.pexp();
             (mean, mean)
         }
         Link::Inverse => (1.0 / eta, -1.0 / (eta * eta)),
@@ -927,9 +929,9 @@ pub fn marginal_effects(
             // contrast on that scale: the difference itself, or the log of the ratio.
             let (centre, gradient_a, gradient_b) = match scale {
                 EffectScale::Difference => (mean_a - mean_b, 1.0, -1.0),
-                EffectScale::Ratio => (mean_a.ln() - mean_b.ln(), 1.0 / mean_a, -1.0 / mean_b),
+                EffectScale::Ratio => (mean_a.pln() - mean_b.pln(), 1.0 / mean_a, -1.0 / mean_b),
                 EffectScale::OddsRatio => {
-                    let logit = |mean: f64| mean.ln() - (-mean).ln_1p();
+                    let logit = |mean: f64| mean.pln() - (-mean).pln_1p();
                     (
                         logit(mean_a) - logit(mean_b),
                         1.0 / (mean_a * (1.0 - mean_a)),
@@ -951,8 +953,8 @@ pub fn marginal_effects(
             let statistic = centre / standard_error;
             let (estimate, lower, upper) = match scale {
                 EffectScale::Difference => (centre, lower, upper),
-                EffectScale::Ratio => (mean_a / mean_b, lower.exp(), upper.exp()),
-                EffectScale::OddsRatio => (centre.exp(), lower.exp(), upper.exp()),
+                EffectScale::Ratio => (mean_a / mean_b, lower.pexp(), upper.pexp()),
+                EffectScale::OddsRatio => (centre.pexp(), lower.pexp(), upper.pexp()),
             };
             effects.push(MarginalEffect {
                 arm,

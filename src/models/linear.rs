@@ -64,6 +64,8 @@
 //! from common software. Householder QR is backward stable without pivoting,
 //! so accuracy is not lost by this choice.
 
+#[allow(unused_imports)]
+use crate::models::portable::Portable;
 use nalgebra::DMatrix;
 use std::fmt;
 
@@ -476,7 +478,7 @@ fn equilibrate(design: &DMatrix<f64>) -> (Vec<Vec<f64>>, Vec<f64>) {
             // Clamping keeps 2^exponent a normal number, so the scaling stays exact
             // except for entries that would become subnormal anyway.
             let exponent = (largest.log2().floor() as i32).clamp(-1000, 1000);
-            2.0_f64.powi(-exponent)
+            2.0_f64.ppowi(-exponent)
         } else {
             1.0
         };

@@ -5,6 +5,7 @@
 pub mod glm;
 pub mod linear;
 pub mod multinomial;
+pub mod portable;
 pub mod ordinal;
 
 /// Why an iterative (or direct) fit stopped. Carried into results and the

@@ -22,6 +22,8 @@
 //! References: Agresti A (2013) Categorical Data Analysis, 3rd ed., Wiley, §8.1 (baseline-category
 //! logit models); McCullagh P, Nelder JA (1989) Generalized Linear Models, 2nd ed., ch. 6.
 
+#[allow(unused_imports)]
+use crate::models::portable::Portable;
 use nalgebra::{DMatrix, DVector};
 
 use super::StopReason;
@@ -185,7 +187,7 @@ pub fn fit_multinomial_logit(
         for (position, &category) in non_reference_categories.iter().enumerate() {
             parameters[position * n_columns + intercept] = (prepared.category_weight[category]
                 / prepared.category_weight[reference_category])
-                .ln()
+                .pln()
                 / value;
         }
     }
@@ -334,9 +336,9 @@ pub fn multinomial_probabilities(
             .iter()
             .cloned()
             .fold(f64::NEG_INFINITY, f64::max);
-        let total: f64 = linear_predictor.iter().map(|v| (v - maximum).exp()).sum();
+        let total: f64 = linear_predictor.iter().map(|v| (v - maximum).pexp()).sum();
         for category in 0..fit.n_categories {
-            probabilities[(row, category)] = (linear_predictor[category] - maximum).exp() / total;
+            probabilities[(row, category)] = (linear_predictor[category] - maximum).pexp() / total;
         }
     }
     Ok(probabilities)
@@ -400,13 +402,13 @@ impl Problem<'_> {
                 workspace.linear_predictor[k] = eta;
                 maximum = maximum.max(eta);
             }
-            let mut total = (-maximum).exp();
+            let mut total = (-maximum).pexp();
             for k in 0..n_free {
-                let e = (workspace.linear_predictor[k] - maximum).exp();
+                let e = (workspace.linear_predictor[k] - maximum).pexp();
                 workspace.probability[k] = e;
                 total += e;
             }
-            let log_normaliser = maximum + total.ln();
+            let log_normaliser = maximum + total.pln();
             let category = self.response[row];
             let observed_position = if category == self.reference_category {
                 None

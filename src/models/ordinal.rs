@@ -27,6 +27,8 @@
 //! Brant R (1990) Assessing proportionality in the proportional odds model for ordinal logistic
 //! regression, Biometrics 46:1171–1178.
 
+#[allow(unused_imports)]
+use crate::models::portable::Portable;
 use std::fmt;
 
 use nalgebra::{DMatrix, DVector};
@@ -51,14 +53,14 @@ impl CumulativeLink {
         match self {
             CumulativeLink::Logit => {
                 if t >= 0.0 {
-                    1.0 / (1.0 + (-t).exp())
+                    1.0 / (1.0 + (-t).pexp())
                 } else {
-                    let e = t.exp();
+                    let e = t.pexp();
                     e / (1.0 + e)
                 }
             }
             CumulativeLink::Probit => 0.5 * libm::erfc(-t / std::f64::consts::SQRT_2),
-            CumulativeLink::ComplementaryLogLog => -(-t.exp()).exp_m1(),
+            CumulativeLink::ComplementaryLogLog => -(-t.pexp()).pexp_m1(),
         }
     }
 
@@ -67,7 +69,7 @@ impl CumulativeLink {
         match self {
             CumulativeLink::Logit => self.cdf(-t),
             CumulativeLink::Probit => 0.5 * libm::erfc(t / std::f64::consts::SQRT_2),
-            CumulativeLink::ComplementaryLogLog => (-t.exp()).exp(),
+            CumulativeLink::ComplementaryLogLog => (-t.pexp()).pexp(),
         }
     }
 
@@ -75,7 +77,7 @@ impl CumulativeLink {
     fn density_and_derivative(self, t: f64) -> (f64, f64) {
         match self {
             CumulativeLink::Logit => {
-                let e = (-t.abs()).exp();
+                let e = (-t.abs()).pexp();
                 let density = e / ((1.0 + e) * (1.0 + e));
                 // f' = f (1 - 2F); (1 - e)/(1 + e) equals 1 - 2F for t <= 0 and 2F - 1 above.
                 let one_minus_two_cdf = if t >= 0.0 {
@@ -86,12 +88,12 @@ impl CumulativeLink {
                 (density, density * one_minus_two_cdf)
             }
             CumulativeLink::Probit => {
-                let density = (-0.5 * t * t).exp() / (2.0 * std::f64::consts::PI).sqrt();
+                let density = (-0.5 * t * t).pexp() / (2.0 * std::f64::consts::PI).sqrt();
                 (density, -t * density)
             }
             CumulativeLink::ComplementaryLogLog => {
-                let e = t.exp();
-                let density = (t - e).exp();
+                let e = t.pexp();
+                let density = (t - e).pexp();
                 (density, density * (1.0 - e))
             }
         }
@@ -100,13 +102,13 @@ impl CumulativeLink {
     /// The link itself, `g(p)`, used only for starting values (`0 < p < 1`).
     fn quantile(self, p: f64) -> f64 {
         match self {
-            CumulativeLink::Logit => (p / (1.0 - p)).ln(),
+            CumulativeLink::Logit => (p / (1.0 - p)).pln(),
             CumulativeLink::Probit => match Normal::new(0.0, 1.0) {
                 Ok(normal) => normal.inverse_cdf(p),
                 // Unreachable for the fixed parameters; a logit-scaled start is still valid.
-                Err(_) => (p / (1.0 - p)).ln() / 1.7,
+                Err(_) => (p / (1.0 - p)).pln() / 1.7,
             },
-            CumulativeLink::ComplementaryLogLog => (-(-p).ln_1p()).ln(),
+            CumulativeLink::ComplementaryLogLog => (-(-p).pln_1p()).pln(),
         }
     }
 
@@ -1063,7 +1065,7 @@ impl Problem<'_> {
             if probability.is_nan() || probability <= 0.0 || !probability.is_finite() {
                 return Evaluation::Infeasible;
             }
-            log_likelihood += weight * probability.ln();
+            log_likelihood += weight * probability.pln();
             if !with_derivatives {
                 continue;
             }
@@ -1482,7 +1484,7 @@ fn binary_logit(design: &DMatrix<f64>, response: &[bool], weights: &[f64]) -> Bi
             },
         };
     }
-    coefficients[0] = (proportion / (1.0 - proportion)).ln();
+    coefficients[0] = (proportion / (1.0 - proportion)).pln();
     let mut x_row = vec![0.0; n_parameters];
     let evaluate =
         |coefficients: &[f64],
@@ -1637,9 +1639,9 @@ fn binary_logit(design: &DMatrix<f64>, response: &[bool], weights: &[f64]) -> Bi
 /// `log(1 + e^t)` without overflow.
 fn softplus(t: f64) -> f64 {
     if t > 0.0 {
-        t + (-t).exp().ln_1p()
+        t + (-t).pexp().pln_1p()
     } else {
-        t.exp().ln_1p()
+        t.pexp().pln_1p()
     }
 }
 

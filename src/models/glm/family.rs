@@ -9,8 +9,11 @@
 //! (variance functions, deviances); Hilbe (2011), *Negative Binomial Regression*, 2nd ed., §8
 //! (NB2 log-likelihood); R's `family.R` for the numerical clamps (common practice).
 
-use statrs::function::erf::{erfc, erfc_inv};
-use statrs::function::gamma::ln_gamma;
+#[allow(unused_imports)]
+use crate::models::portable::Portable;
+use libm::erfc;
+use statrs::function::erf::erfc_inv;
+use libm::lgamma as ln_gamma;
 
 use super::{Family, Link};
 
@@ -58,17 +61,17 @@ fn standard_normal_cdf(x: f64) -> f64 {
 }
 
 fn standard_normal_density(x: f64) -> f64 {
-    (-0.5 * x * x).exp() / (2.0 * std::f64::consts::PI).sqrt()
+    (-0.5 * x * x).pexp() / (2.0 * std::f64::consts::PI).sqrt()
 }
 
 impl Kernel {
     /// The link function g(mu); used only for starting values.
     pub(crate) fn link_function(&self, mean: f64) -> f64 {
         match self.link {
-            Link::Logit => (mean / (1.0 - mean)).ln(),
+            Link::Logit => (mean / (1.0 - mean)).pln(),
             Link::Probit => -std::f64::consts::SQRT_2 * erfc_inv(2.0 * mean),
-            Link::CLogLog => (-(-mean).ln_1p()).ln(),
-            Link::Log => mean.ln(),
+            Link::CLogLog => (-(-mean).pln_1p()).pln(),
+            Link::Log => mean.pln(),
             Link::Inverse => 1.0 / mean,
             Link::Identity => mean,
         }
@@ -84,12 +87,12 @@ impl Kernel {
                 } else if eta > LOGIT_CLAMP {
                     1.0 - MEAN_FLOOR
                 } else {
-                    1.0 / (1.0 + (-eta).exp())
+                    1.0 / (1.0 + (-eta).pexp())
                 }
             }
             Link::Probit => standard_normal_cdf(eta.clamp(-PROBIT_CLAMP, PROBIT_CLAMP)),
-            Link::CLogLog => (-(-eta.exp()).exp_m1()).clamp(MEAN_FLOOR, 1.0 - MEAN_FLOOR),
-            Link::Log => eta.exp().max(MEAN_FLOOR),
+            Link::CLogLog => (-(-eta.pexp()).pexp_m1()).clamp(MEAN_FLOOR, 1.0 - MEAN_FLOOR),
+            Link::Log => eta.pexp().max(MEAN_FLOOR),
             Link::Inverse => 1.0 / eta,
             Link::Identity => eta,
         }
@@ -103,16 +106,16 @@ impl Kernel {
                 if eta.abs() > LOGIT_CLAMP {
                     MEAN_FLOOR
                 } else {
-                    let e = (-eta.abs()).exp();
+                    let e = (-eta.abs()).pexp();
                     e / ((1.0 + e) * (1.0 + e))
                 }
             }
             Link::Probit => standard_normal_density(eta).max(MEAN_FLOOR),
             Link::CLogLog => {
                 let capped = eta.min(700.0);
-                (capped - capped.exp()).exp().max(MEAN_FLOOR)
+                (capped - capped.pexp()).pexp().max(MEAN_FLOOR)
             }
-            Link::Log => eta.exp().max(MEAN_FLOOR),
+            Link::Log => eta.pexp().max(MEAN_FLOOR),
             Link::Inverse => -1.0 / (eta * eta),
             Link::Identity => 1.0,
         }
@@ -125,7 +128,7 @@ impl Kernel {
                 if eta.abs() > LOGIT_CLAMP {
                     0.0
                 } else {
-                    let mu = 1.0 / (1.0 + (-eta).exp());
+                    let mu = 1.0 / (1.0 + (-eta).pexp());
                     mu * (1.0 - mu) * (1.0 - 2.0 * mu)
                 }
             }
@@ -138,9 +141,9 @@ impl Kernel {
             }
             Link::CLogLog => {
                 let capped = eta.min(700.0);
-                (capped - capped.exp()).exp() * (1.0 - capped.exp())
+                (capped - capped.pexp()).pexp() * (1.0 - capped.pexp())
             }
-            Link::Log => eta.exp(),
+            Link::Log => eta.pexp(),
             Link::Inverse => 2.0 / (eta * eta * eta),
             Link::Identity => 0.0,
         }
@@ -153,10 +156,10 @@ impl Kernel {
             Link::Logit => eta.abs() > LOGIT_CLAMP,
             Link::Probit => eta.abs() > PROBIT_CLAMP,
             Link::CLogLog => {
-                let mean = -(-eta.exp()).exp_m1();
+                let mean = -(-eta.pexp()).pexp_m1();
                 !(mean > MEAN_FLOOR && mean < 1.0 - MEAN_FLOOR)
             }
-            Link::Log => eta.exp() < MEAN_FLOOR,
+            Link::Log => eta.pexp() < MEAN_FLOOR,
             Link::Inverse | Link::Identity => false,
         }
     }
@@ -218,9 +221,9 @@ impl Kernel {
             Distribution::Binomial => 2.0 * (x_log_x_over(y, mu) + x_log_x_over(1.0 - y, 1.0 - mu)),
             Distribution::Poisson => 2.0 * (x_log_x_over(y, mu) - (y - mu)),
             Distribution::NegativeBinomial { theta } => {
-                2.0 * (x_log_x_over(y, mu) - (y + theta) * ((y + theta) / (mu + theta)).ln())
+                2.0 * (x_log_x_over(y, mu) - (y + theta) * ((y + theta) / (mu + theta)).pln())
             }
-            Distribution::Gamma => -2.0 * ((y / mu).ln() - (y - mu) / mu),
+            Distribution::Gamma => -2.0 * ((y / mu).pln() - (y - mu) / mu),
         };
         weight * unit
     }
@@ -256,7 +259,7 @@ pub(crate) fn compensated_sum(values: impl Iterator<Item = f64>) -> f64 {
 
 /// y log(y / mu) with the convention 0 log 0 = 0.
 fn x_log_x_over(y: f64, mu: f64) -> f64 {
-    if y > 0.0 { y * (y / mu).ln() } else { 0.0 }
+    if y > 0.0 { y * (y / mu).pln() } else { 0.0 }
 }
 
 /// The full log-likelihood with all constants, matching R's `logLik` for `glm` and
@@ -289,17 +292,17 @@ pub(crate) fn log_likelihood(
                         - ln_gamma(successes + 1.0)
                         - ln_gamma(trials - successes + 1.0);
                     if successes > 0.0 {
-                        value += successes * mu.ln();
+                        value += successes * mu.pln();
                     }
                     if trials - successes > 0.0 {
-                        value += (trials - successes) * (-mu).ln_1p();
+                        value += (trials - successes) * (-mu).pln_1p();
                     }
                     value
                 }),
         ),
         Distribution::Poisson => compensated_sum(response.iter().zip(means).zip(weights).map(
             |((&y, &mu), &weight)| {
-                let y_log_mu = if y > 0.0 { y * mu.ln() } else { 0.0 };
+                let y_log_mu = if y > 0.0 { y * mu.pln() } else { 0.0 };
                 weight * (y_log_mu - mu - ln_gamma(y + 1.0))
             },
         )),
@@ -309,12 +312,12 @@ pub(crate) fn log_likelihood(
                 .zip(means)
                 .zip(weights)
                 .map(|((&y, &mu), &weight)| {
-                    let y_log_mu = if y > 0.0 { y * mu.ln() } else { 0.0 };
+                    let y_log_mu = if y > 0.0 { y * mu.pln() } else { 0.0 };
                     weight
                         * (ln_gamma(theta + y) - ln_gamma(theta) - ln_gamma(y + 1.0)
-                            + theta * theta.ln()
+                            + theta * theta.pln()
                             + y_log_mu
-                            - (theta + y) * (theta + mu).ln())
+                            - (theta + y) * (theta + mu).pln())
                 }),
         ),
         Distribution::Gamma => {
@@ -329,9 +332,9 @@ pub(crate) fn log_likelihood(
                     .map(|((&y, &mu), &weight)| {
                         let scale = mu * dispersion;
                         weight
-                            * ((shape - 1.0) * y.ln()
+                            * ((shape - 1.0) * y.pln()
                                 - y / scale
-                                - shape * scale.ln()
+                                - shape * scale.pln()
                                 - ln_gamma(shape))
                     }),
             )

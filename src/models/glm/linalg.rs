@@ -8,6 +8,8 @@
 //! §5.4 (rank-revealing factorisations); Higham (2002), *Accuracy and Stability of Numerical
 //! Algorithms*, §7.3 (diagonal scaling of symmetric positive-definite systems).
 
+#[allow(unused_imports)]
+use crate::models::portable::Portable;
 use nalgebra::{DMatrix, DVector};
 
 /// Rows per block in the cross-product pass: long enough for contiguous inner loops over a
@@ -216,9 +218,9 @@ impl ScaledCholesky {
             .l_dirty()
             .diagonal()
             .iter()
-            .map(|d| 2.0 * d.ln())
+            .map(|d| 2.0 * d.pln())
             .sum();
-        scaled_log_det - 2.0 * self.scale.iter().map(|s| s.ln()).sum::<f64>()
+        scaled_log_det - 2.0 * self.scale.iter().map(|s| s.pln()).sum::<f64>()
     }
 
     /// Σ over entries of (L⁻¹ D v)², i.e. vᵀ A⁻¹ v, using `work` (length = size) as scratch.

@@ -9,6 +9,8 @@
 //! alternation used by `MASS::glm.nb`); Abramowitz & Stegun (1964), 6.4.6 and 6.4.12 (trigamma
 //! recurrence and asymptotic series).
 
+#[allow(unused_imports)]
+use crate::models::portable::Portable;
 use statrs::function::gamma::digamma;
 
 /// Trigamma ψ'(x) for x > 0: the recurrence ψ'(x) = ψ'(x + 1) + 1/x² lifts x to at least 10,
@@ -41,8 +43,8 @@ fn theta_score(theta: f64, response: &[f64], means: &[f64], weights: &[f64]) -> 
     for ((&y, &mu), &w) in response.iter().zip(means).zip(weights) {
         if w > 0.0 {
             total += w
-                * (digamma(theta + y) - digamma_theta + theta.ln() + 1.0
-                    - (theta + mu).ln()
+                * (digamma(theta + y) - digamma_theta + theta.pln() + 1.0
+                    - (theta + mu).pln()
                     - (y + theta) / (mu + theta));
         }
     }
