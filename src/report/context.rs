@@ -1,7 +1,8 @@
 //! From the results document to the strings the templates lay out.
 //!
 //! Every string that comes from the plan or the data passes through
-//! `markdown_text` here, once; templates print context values verbatim.
+//! `markdown_text` here, once (or `markdown_code` where it is shown as code);
+//! templates print context values verbatim.
 
 use super::format::*;
 use super::CAUTION;
@@ -15,6 +16,9 @@ pub struct Context {
     tool_version: &'static str,
     caution: &'static str,
     plan_file: String,
+    /// The plan's file name as a code span, and the command that reruns it.
+    plan_file_code: String,
+    rerun_command: String,
     plan_sha256: String,
     lock_sentence: String,
     alpha_sentence: String,
@@ -226,6 +230,8 @@ pub fn build(results: &Results) -> Context {
         tool_version: results.tool.version,
         caution: CAUTION,
         plan_file: markdown_text(&results.plan.file),
+        plan_file_code: markdown_code(&results.plan.file),
+        rerun_command: markdown_code(&format!("cairn run {} --out DIR", results.plan.file)),
         plan_sha256: results.plan.sha256.clone(),
         lock_sentence,
         alpha_sentence,
@@ -710,7 +716,7 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
     AnalysisView {
         marginal,
         number,
-        id: markdown_text(&analysis.id),
+        id: markdown_code(&analysis.id),
         title: markdown_text(&analysis.title),
         role: analysis.role,
         methods,
