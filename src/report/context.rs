@@ -1,7 +1,8 @@
 //! From the results document to the strings the templates lay out.
 //!
 //! Every string that comes from the plan or the data passes through
-//! `markdown_text` here, once; templates print context values verbatim.
+//! `markdown_text` here, once (or `markdown_code` where it is shown as code);
+//! templates print context values verbatim.
 
 use super::format::*;
 use super::CAUTION;
@@ -20,6 +21,10 @@ pub struct Context {
     tool_version: &'static str,
     caution: &'static str,
     plan_file: String,
+    /// The plan's file name as a code span, and the command that reruns it.
+    plan_file_code: String,
+    rerun_command: String,
+    verify_command: String,
     plan_sha256: String,
     lock_sentence: String,
     alpha_sentence: String,
@@ -250,6 +255,9 @@ pub fn build(results: &Results) -> Context {
         tool_version: results.tool.version,
         caution: CAUTION,
         plan_file: markdown_text(&results.plan.file),
+        plan_file_code: markdown_code(&results.plan.file),
+        rerun_command: markdown_code(&format!("cairn run {} --out DIR", results.plan.file)),
+        verify_command: markdown_code(&format!("cairn verify DIR --plan {}", results.plan.file)),
         plan_sha256: results.plan.sha256.clone(),
         lock_sentence,
         alpha_sentence,
@@ -687,7 +695,11 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
             parts.push(format!("θ = {}{se}", fixed(theta, 3)));
         }
         if let Some(iterations) = fit.iterations {
-            parts.push(format!("{} ({iterations} iterations)", markdown_text(&fit.stop_reason)));
+            if fit.stop_reason.contains("iterations") {
+                parts.push(markdown_text(&fit.stop_reason));
+            } else {
+                parts.push(format!("{} ({iterations} iterations)", markdown_text(&fit.stop_reason)));
+            }
         }
         if let Some(steps) = fit.refinement_steps {
             parts.push(format!("{steps} refinement step(s) of the least-squares solution"));
@@ -763,7 +775,7 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         estimand,
         marginal,
         number,
-        id: markdown_text(&analysis.id),
+        id: markdown_code(&analysis.id),
         title: markdown_text(&analysis.title),
         role: analysis.role,
         methods,

@@ -69,14 +69,14 @@ pub fn percent(level: f64) -> String {
 
 /// Escape text from the plan or the data for Markdown, so that it shows as
 /// written and can never become markup: every character that can open
-/// emphasis, code, a link, a table cell, an entity or raw HTML is
-/// backslash-escaped (links and images cannot start without `[`), and line
-/// breaks become spaces.
+/// emphasis, code, a link, a table cell, an entity, raw HTML or the closing
+/// `#`s of a heading is backslash-escaped (links and images cannot start
+/// without `[`), and line breaks become spaces.
 pub fn markdown_text(text: &str) -> String {
     let mut escaped = String::with_capacity(text.len());
     for character in text.chars() {
         match character {
-            '\\' | '`' | '*' | '_' | '{' | '}' | '[' | ']' | '<' | '>' | '|' | '~' | '&' => {
+            '\\' | '`' | '*' | '_' | '{' | '}' | '[' | ']' | '<' | '>' | '|' | '~' | '&' | '#' => {
                 escaped.push('\\');
                 escaped.push(character);
             }
@@ -85,6 +85,30 @@ pub fn markdown_text(text: &str) -> String {
         }
     }
     escaped
+}
+
+/// Text from the plan or the data as a whole Markdown code span, backticks
+/// included, shown exactly as written. Inside a code span a backslash is
+/// literal, so [`markdown_text`] would leave its escapes visible (`a\_b`);
+/// instead the fence is one backtick longer than the longest run of backticks
+/// in the text, and a space pads each side when the text starts or ends with
+/// a backtick or a space (CommonMark strips one such pair). `<` and `&` are
+/// safe in a code span: the HTML step escapes them. Not for table cells: a
+/// `|` would still split the cell there.
+pub fn markdown_code(text: &str) -> String {
+    let text = text.replace(['\n', '\r', '\t'], " ");
+    if text.is_empty() {
+        return String::new();
+    }
+    let mut longest_run = 0;
+    let mut run = 0;
+    for character in text.chars() {
+        run = if character == '`' { run + 1 } else { 0 };
+        longest_run = longest_run.max(run);
+    }
+    let fence = "`".repeat(longest_run + 1);
+    let pad = if text.starts_with(['`', ' ']) || text.ends_with(['`', ' ']) { " " } else { "" };
+    format!("{fence}{pad}{text}{pad}{fence}")
 }
 
 /// A full-precision number for tables/*.csv: the shortest text that reads back
@@ -113,6 +137,11 @@ mod tests {
         assert_eq!(count(10_000), "10,000");
         assert_eq!(count(1_234_567), "1,234,567");
         assert_eq!(markdown_text("<b>x</b> | y"), "\\<b\\>x\\</b\\> \\| y");
+        assert_eq!(markdown_text("score #"), "score \\#");
+        assert_eq!(markdown_code("score_change"), "`score_change`");
+        assert_eq!(markdown_code("a`b``c"), "```a`b``c```");
+        assert_eq!(markdown_code("`x"), "`` `x ``");
+        assert_eq!(markdown_code(""), "");
         assert_eq!(exact(0.1), "0.1");
         assert_eq!(exact(1e-300), "1e-300");
     }
