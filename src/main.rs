@@ -170,6 +170,12 @@ fn verify(dir: &Path, plan: Option<&Path>) -> Result<ExitCode, cairn::Error> {
             }
         }
     }
+    if let Some(error) = &verification.rerun_error {
+        println!("the plan could not be re-run with the current inputs:");
+        for line in error.lines() {
+            println!("  {line}");
+        }
+    }
     for difference in &verification.number_differences {
         println!("number differs: {}: recorded {}, fresh {}{}", difference.path, difference.recorded, difference.fresh, if difference.within_tolerance { " (within tolerance)" } else { "" });
     }

@@ -69,6 +69,9 @@ pub struct Verification {
     pub inputs: Vec<InputCheck>,
     pub outputs: Vec<OutputCheck>,
     pub number_differences: Vec<NumberDifference>,
+    /// Why the plan could not be re-run, when it could not (e.g. a changed
+    /// plan that no longer validates); the verdict is then a mismatch.
+    pub rerun_error: Option<String>,
 }
 
 fn bad(message: String, file: &str) -> Error {
@@ -118,9 +121,26 @@ pub fn verify(dir: &Path, plan: Option<&Path>) -> Result<Verification, Error> {
     }
     let inputs_match = inputs.iter().all(|input| input.current_sha256.as_deref() == Some(input.recorded_sha256.as_str()));
 
-    // Re-run in memory and compare every output.
-    let fresh_inputs = run::load_inputs(&plan_path, options.mode)?;
-    let staged = run::produce(&fresh_inputs, &options)?;
+    // Re-run in memory and compare every output. A re-run that fails (a changed
+    // input that no longer validates) is itself a finding, not an error.
+    let staged = match run::load_inputs(&plan_path, options.mode).and_then(|fresh| run::produce(&fresh, &options)) {
+        Ok(staged) => staged,
+        Err(error) => {
+            let verification = Verification {
+                schema: "cairn-verification/1",
+                tool_version: TOOL_VERSION,
+                verdict: Verdict::Mismatch,
+                relative_tolerance: RELATIVE_TOLERANCE,
+                plan_file,
+                inputs,
+                outputs: Vec::new(),
+                number_differences: Vec::new(),
+                rerun_error: Some(error.to_string()),
+            };
+            write_record(dir, &verification)?;
+            return Ok(verification);
+        }
+    };
     let mut outputs = Vec::new();
     let mut listed: Vec<String> = Vec::new();
     for (name, fresh) in staged.files() {
@@ -157,11 +177,16 @@ pub fn verify(dir: &Path, plan: Option<&Path>) -> Result<Verification, Error> {
         inputs,
         outputs,
         number_differences,
+        rerun_error: None,
     };
-    let mut record = serde_json::to_vec_pretty(&verification).map_err(|cause| Error::internal(format!("cannot serialise the verification record: {cause}")))?;
-    record.push(b'\n');
-    crate::output::write_atomically(&dir.join("verification.json"), &record)?;
+    write_record(dir, &verification)?;
     Ok(verification)
+}
+
+fn write_record(dir: &Path, verification: &Verification) -> Result<(), Error> {
+    let mut record = serde_json::to_vec_pretty(verification).map_err(|cause| Error::internal(format!("cannot serialise the verification record: {cause}")))?;
+    record.push(b'\n');
+    crate::output::write_atomically(&dir.join("verification.json"), &record)
 }
 
 fn locate_plan(dir: &Path, plan_file: &str) -> Option<PathBuf> {
