@@ -186,8 +186,8 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
         }),
         _ => {}
     }
-    if let Some(record) = &last {
-        if record.tool_version != TOOL_VERSION {
+    if let Some(record) = &last
+        && record.tool_version != TOOL_VERSION {
             deviations.push(Deviation {
                 code: "LOCK-TOOL-VERSION",
                 severity: "minor",
@@ -195,7 +195,6 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
                 message: format!("the plan was locked with cairn {} and is run with cairn {}", record.tool_version, TOOL_VERSION),
             });
         }
-    }
     if !inputs.data.join.only_in_subjects.is_empty() || !inputs.data.join.only_in_allocation.is_empty() {
         deviations.push(Deviation {
             code: "SUBJECTS-UNMATCHED",
@@ -383,26 +382,13 @@ fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &
     let arms = &plan.data.treatment.arms;
     let variable_info = |index: usize| VariableInfo { column: plan.variables[index].name.clone(), label: plan.variables[index].display_name().to_string() };
     let label_of = |name: &str| plan.variables.iter().find(|variable| variable.name == name).map(|variable| variable.display_name().to_string()).unwrap_or_else(|| name.to_string());
-    let endpoint_variable = &plan.variables[analysis.endpoint.variable];
     let mut result = AnalysisResult {
         id: analysis.id.clone(),
         title: analysis.title.clone(),
         role: analysis.role.name(),
         population: plan.populations[analysis.population].id.clone(),
         estimand: analysis.estimand.as_ref().map(estimand_info),
-        endpoint: EndpointInfo {
-            column: endpoint_variable.name.clone(),
-            label: endpoint_variable.display_name().to_string(),
-            kind: analysis.endpoint.kind.name(),
-            higher_is: match analysis.endpoint.higher_is {
-                plan::Direction::Better => "better",
-                plan::Direction::Worse => "worse",
-            },
-            event: analysis.endpoint.event.and_then(|event| match &endpoint_variable.kind {
-                plan::VariableKind::Factor { levels: Some(levels) } => levels.get(event).cloned(),
-                _ => None,
-            }),
-        },
+        endpoint: endpoint_info(plan, analysis),
         model: ModelInfo { family: analysis.model.family_name(), description: String::new(), details: String::new() },
         covariates: analysis.covariates.iter().map(|&index| variable_info(index)).collect(),
         strata: analysis.strata.iter().map(|&index| variable_info(index)).collect(),
@@ -685,26 +671,34 @@ fn apply_multiplicity(plan: &Plan, spec: &plan::MultiplicitySpec, analyses: &[An
     })
 }
 
+/// The endpoint of an analysis as results.json describes it.
+fn endpoint_info(plan: &Plan, analysis: &Analysis) -> EndpointInfo {
+    let variable = &plan.variables[analysis.endpoint.variable];
+    EndpointInfo {
+        column: variable.name.clone(),
+        label: variable.display_name().to_string(),
+        kind: analysis.endpoint.kind.name(),
+        higher_is: match analysis.endpoint.higher_is {
+            plan::Direction::Better => "better",
+            plan::Direction::Worse => "worse",
+        },
+        event: analysis.endpoint.event.and_then(|event| match &variable.kind {
+            plan::VariableKind::Factor { levels: Some(levels) } => levels.get(event).cloned(),
+            _ => None,
+        }),
+    }
+}
+
 /// The entry of an analysis left out by `--only`.
 fn not_run(plan: &Plan, analysis: &Analysis) -> AnalysisResult {
     let arms = plan.data.treatment.arms.len();
-    let variable = &plan.variables[analysis.endpoint.variable];
     AnalysisResult {
         id: analysis.id.clone(),
         title: analysis.title.clone(),
         role: analysis.role.name(),
         population: plan.populations[analysis.population].id.clone(),
         estimand: analysis.estimand.as_ref().map(estimand_info),
-        endpoint: EndpointInfo {
-            column: variable.name.clone(),
-            label: variable.display_name().to_string(),
-            kind: analysis.endpoint.kind.name(),
-            higher_is: match analysis.endpoint.higher_is {
-                plan::Direction::Better => "better",
-                plan::Direction::Worse => "worse",
-            },
-            event: None,
-        },
+        endpoint: endpoint_info(plan, analysis),
         model: ModelInfo { family: analysis.model.family_name(), description: String::new(), details: String::new() },
         covariates: Vec::new(),
         strata: Vec::new(),

@@ -234,6 +234,8 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
             let mut offset = Vec::with_capacity(analysed.len());
             for &row in &analysed {
                 let value = values[row].unwrap_or(0.0);
+                // Written this way so that NaN is refused too.
+                #[allow(clippy::neg_cmp_op_on_partial_ord)]
                 if !(value > 0.0) {
                     return Err(fail(format!(
                         "subject \"{}\" has exposure {} = {value}; an exposure must be positive",

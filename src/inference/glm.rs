@@ -92,8 +92,8 @@ pub fn analyse(design: &Design, analysis: &Analysis, spec: &GlmSpec) -> Result<A
             _ => None,
         });
         let ratio = fit.pearson_chi_square / fit.residual_df.max(1) as f64;
-        if let Some(threshold) = threshold {
-            if ratio > threshold {
+        if let Some(threshold) = threshold
+            && ratio > threshold {
                 family = GlmFamily::NegativeBinomial;
                 options = options_for(spec, family, method);
                 fit = fit_glm(&data, &options).map_err(|error| error.to_string())?;
@@ -103,7 +103,6 @@ pub fn analyse(design: &Design, analysis: &Analysis, spec: &GlmSpec) -> Result<A
                 findings.push(Finding { code: "FALLBACK-USED", severity: "minor", message: message.clone() });
                 fallback_used = Some(message);
             }
-        }
     }
     match &fit.stop_reason {
         StopReason::Converged { .. } | StopReason::SingularDesign { .. } => {}

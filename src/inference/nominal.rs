@@ -156,6 +156,6 @@ fn heterogeneity(design: &Design, response: &[usize], n_categories: usize, refer
             }
         })
     };
-    let check = super::heterogeneity_outcome(name, outcome, level);
-    check
+    
+    super::heterogeneity_outcome(name, outcome, level)
 }

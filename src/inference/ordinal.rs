@@ -202,10 +202,9 @@ pub fn analyse(design: &Design, analysis: &Analysis, link: CumulativeLink) -> Re
 
     // The planned fallback for non-proportional odds in the treatment term.
     let mut contrasts = contrasts;
-    let mut treatment_tests = treatment_tests;
     let mut model_words_extra = String::new();
-    if analysis.fallbacks.contains(&Fallback::PartialProportionalOdds) {
-        if let Some(partial) = partial_proportional_odds(design, analysis, &prepared, &kept, &model, &options) {
+    if analysis.fallbacks.contains(&Fallback::PartialProportionalOdds)
+        && let Some(partial) = partial_proportional_odds(design, analysis, &prepared, &kept, &model, &options) {
             let message = partial.message.clone();
             findings.push(Finding { code: "FALLBACK-USED", severity: "minor", message: message.clone() });
             fallback_used = Some(match fallback_used.take() {
@@ -216,7 +215,6 @@ pub fn analyse(design: &Design, analysis: &Analysis, link: CumulativeLink) -> Re
             treatment_tests = partial.tests;
             model_words_extra = " The treatment effect was then allowed to vary by cut-point (partial proportional odds), as planned; each comparison is reported at every cut-point as the odds ratio of being above it.".to_string();
         }
-    }
 
     let mut checks = Vec::new();
     if analysis.checks.contains(&Check::ProportionalOdds) {
@@ -347,11 +345,10 @@ fn proportional_odds_checks(design: &Design, prepared: &Prepared, kept: &[usize]
                     rows.push(CheckRow { term: name.clone(), statistic_name: "Wald chi-square", statistic: statistic.statistic, df: statistic.df as f64, p_value });
                 }
             }
-            if let Some(overall) = &brant.overall {
-                if let Some(p_value) = chi_square_upper_p(overall.statistic, overall.df as f64) {
+            if let Some(overall) = &brant.overall
+                && let Some(p_value) = chi_square_upper_p(overall.statistic, overall.df as f64) {
                     rows.push(CheckRow { term: "all terms".to_string(), statistic_name: "Wald chi-square", statistic: overall.statistic, df: overall.df as f64, p_value });
                 }
-            }
             let failed = rows.iter().any(|row| row.p_value < level);
             let mut details = vec!["binary logistic fits of Y above each cut-point; Wald test that each term's slopes are equal across the splits (Brant 1990)".to_string()];
             if failed {

@@ -155,23 +155,20 @@ impl<'f> Reader<'f> {
     }
 
     fn number(&mut self, node: &Node, path: &str) -> Option<f64> {
-        if let Some((text, false)) = node.as_scalar() {
-            if let Ok(value) = text.parse::<f64>() {
-                if value.is_finite() && looks_numeric(text) {
+        if let Some((text, false)) = node.as_scalar()
+            && let Ok(value) = text.parse::<f64>()
+                && value.is_finite() && looks_numeric(text) {
                     return Some(value);
                 }
-            }
-        }
         self.report(ErrorKind::PlanSchema, node, path, format!("expected a number; found {}", node.describe()));
         None
     }
 
     fn whole_number(&mut self, node: &Node, path: &str) -> Option<u64> {
-        if let Some((text, false)) = node.as_scalar() {
-            if let Ok(value) = text.parse::<u64>() {
+        if let Some((text, false)) = node.as_scalar()
+            && let Ok(value) = text.parse::<u64>() {
                 return Some(value);
             }
-        }
         self.report(ErrorKind::PlanSchema, node, path, format!("expected a whole number; found {}", node.describe()));
         None
     }
@@ -395,12 +392,11 @@ fn read_multiplicity(
                         None => None,
                     },
                 };
-                if let Some(id) = &id {
-                    if hypotheses.iter().any(|existing| &existing.id == id) {
+                if let Some(id) = &id
+                    && hypotheses.iter().any(|existing| &existing.id == id) {
                         reader.report(ErrorKind::PlanSchema, item, &item_path, format!("hypothesis id \"{id}\" is used twice"));
                         complete = false;
                     }
-                }
                 match (id, analysis, contrast, weight) {
                     (Some(id), Some(analysis), Some(contrast), Some(weight)) => {
                         weight_given.push(weight.is_some());
@@ -568,12 +564,11 @@ fn read_variables(reader: &mut Reader<'_>, node: &Node, path: &str) -> Vec<Varia
             }
             Some((low, high))
         });
-        if let (Some(range_node), Some(kind_node)) = (fields.get("range"), fields.get("kind")) {
-            if !matches!(kind_node.as_scalar(), Some(("numeric" | "count", _))) {
+        if let (Some(range_node), Some(kind_node)) = (fields.get("range"), fields.get("kind"))
+            && !matches!(kind_node.as_scalar(), Some(("numeric" | "count", _))) {
                 reader.report(ErrorKind::PlanSchema, range_node, &fields.child("range"), "a range belongs to numeric and count variables only".to_string());
                 continue;
             }
-        }
         let label = fields.get("label").and_then(|value| reader.text(value, &fields.child("label")));
         let levels = fields.get("levels").and_then(|value| {
             let levels = reader.text_list(value, &fields.child("levels"))?;
@@ -629,8 +624,8 @@ fn read_data(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &[Vari
     )?;
     let subjects = fields.get("subjects").and_then(|value| reader.data_path(value, &fields.child("subjects")));
     let key = fields.get("key").and_then(|value| reader.text(value, &fields.child("key")));
-    if let (Some(key), Some(key_node)) = (&key, fields.get("key")) {
-        if variables.iter().any(|variable| &variable.name == key) {
+    if let (Some(key), Some(key_node)) = (&key, fields.get("key"))
+        && variables.iter().any(|variable| &variable.name == key) {
             reader.report(
                 ErrorKind::PlanSchema,
                 key_node,
@@ -638,7 +633,6 @@ fn read_data(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &[Vari
                 format!("the subject key \"{key}\" must not also be declared under variables"),
             );
         }
-    }
     let treatment = fields.get("treatment").and_then(|value| read_treatment(reader, value, &fields.child("treatment"), variables));
     let missing_codes = match fields.get("missing") {
         Some(value) => reader.text_list_allowing_empty(value, &fields.child("missing")).unwrap_or_default(),
@@ -697,8 +691,8 @@ fn read_treatment(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &
     )?;
     let file = fields.get("file").and_then(|value| reader.data_path(value, &fields.child("file")));
     let column = fields.get("column").and_then(|value| reader.text(value, &fields.child("column")));
-    if let (Some(column), Some(column_node)) = (&column, fields.get("column")) {
-        if variables.iter().any(|variable| &variable.name == column) {
+    if let (Some(column), Some(column_node)) = (&column, fields.get("column"))
+        && variables.iter().any(|variable| &variable.name == column) {
             reader.report(
                 ErrorKind::PlanSchema,
                 column_node,
@@ -706,7 +700,6 @@ fn read_treatment(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &
                 format!("the treatment column \"{column}\" must not also be declared under variables"),
             );
         }
-    }
     let levels = fields.get("levels").and_then(|value| {
         let levels = reader.text_list(value, &fields.child("levels"))?;
         if levels.len() < 2 {
@@ -725,11 +718,10 @@ fn read_treatment(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &
     if let Some(labels_node) = fields.get("labels") {
         for (code, key_node, label_node) in reader.named_entries(labels_node, &fields.child("labels")) {
             let label_path = join_path(&fields.child("labels"), code);
-            if levels.is_some() {
-                if let Some(index) = reader.reference(key_node, &label_path, "treatment arm", &known) {
+            if levels.is_some()
+                && let Some(index) = reader.reference(key_node, &label_path, "treatment arm", &known) {
                     labels[index] = reader.text(label_node, &label_path);
                 }
-            }
         }
     }
     let arms = level_names
@@ -752,8 +744,8 @@ fn read_populations(reader: &mut Reader<'_>, node: &Node, path: &str, variables:
         let Some(fields) = reader.mapping(definition, &entry_path, &["flag", "equals", "in", "label"], &["flag"]) else { continue };
         let label = fields.get("label").and_then(|value| reader.text(value, &fields.child("label")));
         let column = fields.get("flag").and_then(|value| reader.reference(value, &fields.child("flag"), "declared variable", &variable_names));
-        if let (Some(column), Some(flag_node)) = (column, fields.get("flag")) {
-            if !matches!(variables[column].kind, VariableKind::Factor { .. }) {
+        if let (Some(column), Some(flag_node)) = (column, fields.get("flag"))
+            && !matches!(variables[column].kind, VariableKind::Factor { .. }) {
                 reader.report(
                     ErrorKind::PlanSchema,
                     flag_node,
@@ -761,7 +753,6 @@ fn read_populations(reader: &mut Reader<'_>, node: &Node, path: &str, variables:
                     format!("a population flag must be a factor variable; \"{}\" is {}", variables[column].name, variables[column].kind.name()),
                 );
             }
-        }
         let values = match (fields.get("equals"), fields.get("in")) {
             (Some(equals), None) => reader.text(equals, &fields.child("equals")).map(|value| vec![value]),
             (None, Some(set)) => reader.text_list(set, &fields.child("in")).map(|values| values.into_iter().map(|(text, _)| text).collect()),
@@ -774,8 +765,8 @@ fn read_populations(reader: &mut Reader<'_>, node: &Node, path: &str, variables:
                 None
             }
         };
-        if let (Some(column), Some(values)) = (column, &values) {
-            if let VariableKind::Factor { levels: Some(levels) } = &variables[column].kind {
+        if let (Some(column), Some(values)) = (column, &values)
+            && let VariableKind::Factor { levels: Some(levels) } = &variables[column].kind {
                 for value in values {
                     if !levels.contains(value) {
                         reader.report(
@@ -787,7 +778,6 @@ fn read_populations(reader: &mut Reader<'_>, node: &Node, path: &str, variables:
                     }
                 }
             }
-        }
         if let (Some(column), Some(values)) = (column, values) {
             populations.push(Population { id: id.to_string(), label: label.unwrap_or_else(|| id.to_string()), column, values });
         }
@@ -880,8 +870,8 @@ fn read_analysis(
     let strata = read_terms(reader, fields.get("strata"), &fields.child("strata"), variables, &variable_names, true);
     if let (Some(covariates), Some(strata)) = (&covariates, &strata) {
         for stratum in strata {
-            if covariates.contains(stratum) {
-                if let Some(strata_node) = fields.get("strata") {
+            if covariates.contains(stratum)
+                && let Some(strata_node) = fields.get("strata") {
                     reader.report(
                         ErrorKind::PlanSchema,
                         strata_node,
@@ -889,14 +879,12 @@ fn read_analysis(
                         format!("\"{}\" is listed both as a covariate and as a stratum", variables[*stratum].name),
                     );
                 }
-            }
         }
     }
-    if let (Some(endpoint), Some(covariates), Some(strata)) = (&endpoint, &covariates, &strata) {
-        if covariates.contains(&endpoint.variable) || strata.contains(&endpoint.variable) {
+    if let (Some(endpoint), Some(covariates), Some(strata)) = (&endpoint, &covariates, &strata)
+        && (covariates.contains(&endpoint.variable) || strata.contains(&endpoint.variable)) {
             reader.report(ErrorKind::PlanSchema, node, path, "the endpoint cannot also be a covariate or stratum".to_string());
         }
-    }
     let pool_small_strata = match fields.get("pool-small-strata") {
         None => Some(None),
         Some(value) => read_pooling(reader, value, &fields.child("pool-small-strata"), strata.as_deref().unwrap_or(&[]), variables).map(Some),
@@ -1447,8 +1435,8 @@ fn read_pooling(reader: &mut Reader<'_>, node: &Node, path: &str, strata: &[usiz
     let into = fields.get("into").and_then(|value| reader.text(value, &fields.child("into")));
     if let (Some(into), Some(into_node)) = (&into, fields.get("into")) {
         for stratum in strata {
-            if let VariableKind::Factor { levels: Some(levels) } = &variables[*stratum].kind {
-                if levels.contains(into) {
+            if let VariableKind::Factor { levels: Some(levels) } = &variables[*stratum].kind
+                && levels.contains(into) {
                     reader.report(
                         ErrorKind::PlanSchema,
                         into_node,
@@ -1456,7 +1444,6 @@ fn read_pooling(reader: &mut Reader<'_>, node: &Node, path: &str, strata: &[usiz
                         format!("the pooled level \"{into}\" is already a level of \"{}\"; choose another name", variables[*stratum].name),
                     );
                 }
-            }
         }
     }
     Some(PoolingRule { below: below?, into: into? })

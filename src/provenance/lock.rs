@@ -165,14 +165,13 @@ pub fn append(request: LockRequest<'_>) -> Result<LockRecord, Error> {
         Some(loaded) => loaded.lock,
         None => LockFile { cairn_lock: 1, records: Vec::new() },
     };
-    if let Some(last) = lock.records.last() {
-        if last.plan_sha256 == plan_sha256 {
+    if let Some(last) = lock.records.last()
+        && last.plan_sha256 == plan_sha256 {
             return Err(Error::one(
                 Problem::new(ErrorKind::LockRecord, format!("the plan is already locked with these exact contents (record {})", last.sequence))
                     .at(Location::file(plan_file)),
             ));
         }
-    }
     for (field, value) in [("--by", request.locked_by), ("--reason", request.reason)] {
         if value.trim().is_empty() {
             return Err(Error::one(Problem::new(ErrorKind::PlanSchema, format!("{field} must not be empty"))));

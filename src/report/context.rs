@@ -682,11 +682,10 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         if let Some(log_likelihood) = fit.log_likelihood {
             parts.push(format!("log-likelihood {}", fixed(log_likelihood, 3)));
         }
-        if let (Some(pearson), Some(df)) = (fit.pearson_chi_square, fit.residual_df) {
-            if df > 0 {
+        if let (Some(pearson), Some(df)) = (fit.pearson_chi_square, fit.residual_df)
+            && df > 0 {
                 parts.push(format!("Pearson χ²/df = {}", fixed(pearson / df as f64, 3)));
             }
-        }
         if let Some(dispersion) = fit.dispersion {
             parts.push(format!("dispersion {}", fixed(dispersion, 4)));
         }

@@ -161,8 +161,8 @@ fn build_figures(results: &Results) -> Result<BTreeMap<String, String>, Error> {
         let svg = forest_svg(&plot).map_err(|error| Error::internal(format!("the forest plot of analysis {} could not be drawn: {error}", analysis.id)))?;
         figures.insert(format!("forest-{}", index + 1), svg);
     }
-    if let Some(family) = &results.multiplicity {
-        if family.procedure == "graphical" {
+    if let Some(family) = &results.multiplicity
+        && family.procedure == "graphical" {
             let nodes = family.hypotheses.iter().map(|hypothesis| GraphNode { name: hypothesis.id.clone(), weight: hypothesis.initial_weight, rejected: false }).collect();
             // One row per analysis, in the order the family first names them.
             let mut rows: Vec<(String, Vec<usize>)> = Vec::new();
@@ -182,6 +182,5 @@ fn build_figures(results: &Results) -> Result<BTreeMap<String, String>, Error> {
             let svg = graph_svg(&figure).map_err(|error| Error::internal(format!("the multiplicity graph could not be drawn: {error}")))?;
             figures.insert("graph".to_string(), svg);
         }
-    }
     Ok(figures)
 }
