@@ -8,11 +8,24 @@
 //!
 //! This module knows YAML, not plans: it rejects what a plan must never
 //! contain at the syntax level (duplicate keys, aliases, tags, several
-//! documents) and nothing else.
+//! documents, nesting deeper than [`MAX_NESTING`], more than [`MAX_ENTRIES`]
+//! entries in one list or mapping) and nothing else.
 
 use crate::error::{Error, ErrorKind, Location, Problem};
 use yaml_rust2::parser::{Event, MarkedEventReceiver, Parser};
 use yaml_rust2::scanner::{Marker, TScalarStyle};
+
+/// The deepest nesting of lists and mappings a plan may have (stated in the
+/// README). A real plan nests about five levels; the limit keeps the tree, and
+/// every recursive walk over it (validation, comparison, dropping), far from
+/// the end of the stack however the input is written.
+pub const MAX_NESTING: usize = 64;
+
+/// The most entries in one list or mapping of a plan (stated in the README). It
+/// bounds, among others, the levels a plan can declare for one factor, and it
+/// keeps the checks for repeated keys and repeated list entries (which compare
+/// each entry with the ones before) quick.
+pub const MAX_ENTRIES: usize = 10_000;
 
 /// A YAML node with its 1-based position.
 #[derive(Debug, Clone, PartialEq)]
@@ -83,7 +96,7 @@ pub fn parse(text: &str, file: &str) -> Result<Node, Error> {
                 .at(Location { file: file.to_string(), line: Some(line), column: Some(column), path: None }),
         ));
     }
-    let mut builder = TreeBuilder { file: file.to_string(), stack: Vec::new(), root: None, problems: Vec::new(), documents: 0 };
+    let mut builder = TreeBuilder { file: file.to_string(), stack: Vec::new(), root: None, problems: Vec::new(), documents: 0, stopped: false };
     let mut parser = Parser::new_from_str(text);
     if let Err(scan_error) = parser.load(&mut builder, true) {
         let marker = scan_error.marker();
@@ -129,6 +142,9 @@ struct TreeBuilder {
     root: Option<Node>,
     problems: Vec<Problem>,
     documents: usize,
+    /// Set once a limit is passed (nesting or entries): the problem is recorded
+    /// and every later event is ignored, so no larger tree is ever built.
+    stopped: bool,
 }
 
 impl TreeBuilder {
@@ -137,6 +153,21 @@ impl TreeBuilder {
     }
 
     fn finish(&mut self, node: Node) {
+        let entries = match self.stack.last() {
+            Some(Open::Sequence { items, .. }) => items.len(),
+            Some(Open::Mapping { pairs, pending_key: None, .. }) => pairs.len(),
+            _ => 0,
+        };
+        if entries >= MAX_ENTRIES {
+            // Checked before the entry is added, so the repeated-key search below
+            // never scans more than MAX_ENTRIES earlier keys.
+            self.stopped = true;
+            self.problems.push(
+                Problem::new(ErrorKind::Limit, format!("a list or mapping holds more than {MAX_ENTRIES} entries; a plan may have at most {MAX_ENTRIES} in one"))
+                    .at(Location { file: self.file.clone(), line: Some(node.line), column: Some(node.column), path: None }),
+            );
+            return;
+        }
         match self.stack.last_mut() {
             None => self.root = Some(node),
             Some(Open::Sequence { items, .. }) => items.push(node),
@@ -168,6 +199,17 @@ impl TreeBuilder {
 
 impl MarkedEventReceiver for TreeBuilder {
     fn on_event(&mut self, event: Event, marker: Marker) {
+        if self.stopped {
+            return;
+        }
+        if matches!(event, Event::SequenceStart(..) | Event::MappingStart(..)) && self.stack.len() >= MAX_NESTING {
+            self.stopped = true;
+            self.problems.push(
+                Problem::new(ErrorKind::Limit, format!("lists and mappings are nested more than {MAX_NESTING} levels deep; a plan may nest at most {MAX_NESTING}"))
+                    .at(location_of(&self.file, &marker)),
+            );
+            return;
+        }
         match event {
             Event::DocumentStart => {
                 self.documents += 1;
@@ -245,6 +287,28 @@ mod tests {
         let error = parse("a:\n\tb: 1\n", "p.yaml").unwrap_err();
         let location = error.problems[0].location.clone().expect("located");
         assert_eq!((location.line, location.column), (Some(2), Some(1)));
+    }
+
+    #[test]
+    fn nesting_beyond_the_limit_is_a_located_limit_error() {
+        let within = format!("{}{}", "[".repeat(MAX_NESTING), "]".repeat(MAX_NESTING));
+        assert!(parse(&within, "p.yaml").is_ok());
+        let beyond = format!("a:\n  b: {}{}\n", "[".repeat(MAX_NESTING + 1), "]".repeat(MAX_NESTING + 1));
+        let error = parse(&beyond, "p.yaml").unwrap_err();
+        assert_eq!(error.kind(), ErrorKind::Limit);
+        let location = error.problems[0].location.clone().expect("located");
+        assert_eq!(location.line, Some(2));
+    }
+
+    #[test]
+    fn lists_beyond_the_entry_limit_are_a_located_limit_error() {
+        let items = |count: usize| (0..count).map(|index| format!("L{index}")).collect::<Vec<_>>().join(", ");
+        assert!(parse(&format!("levels: [{}]\n", items(MAX_ENTRIES)), "p.yaml").is_ok());
+        let error = parse(&format!("levels: [{}]\n", items(MAX_ENTRIES + 1)), "p.yaml").unwrap_err();
+        assert_eq!(error.kind(), ErrorKind::Limit);
+        assert_eq!(error.problems.len(), 1);
+        let keys = (0..=MAX_ENTRIES).map(|index| format!("k{index}: 1")).collect::<Vec<_>>().join("\n");
+        assert_eq!(parse(&keys, "p.yaml").unwrap_err().kind(), ErrorKind::Limit);
     }
 
     #[test]
