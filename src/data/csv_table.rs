@@ -57,6 +57,9 @@ pub fn read_table(bytes: &[u8], file: &str) -> Result<Table, Error> {
             .at(Location { file: file.to_string(), line: Some(1), column: None, path: None }),
         ));
     }
+    // Each name's first column, so that a repeated name is found without
+    // comparing it with every earlier one.
+    let mut first_column: std::collections::BTreeMap<&str, usize> = std::collections::BTreeMap::new();
     for (index, header) in headers.iter().enumerate() {
         if header.is_empty() {
             return Err(Error::one(
@@ -64,12 +67,13 @@ pub fn read_table(bytes: &[u8], file: &str) -> Result<Table, Error> {
                     .at(Location { file: file.to_string(), line: Some(1), column: Some(index + 1), path: None }),
             ));
         }
-        if let Some(first) = headers[..index].iter().position(|earlier| earlier == header) {
+        if let Some(&first) = first_column.get(header.as_str()) {
             return Err(Error::one(
                 Problem::new(ErrorKind::DataFormat, format!("column name \"{header}\" appears twice (columns {} and {})", first + 1, index + 1))
                     .at(Location { file: file.to_string(), line: Some(1), column: Some(index + 1), path: None }),
             ));
         }
+        first_column.insert(header.as_str(), index);
     }
     let mut rows = Vec::new();
     let mut lines = Vec::new();

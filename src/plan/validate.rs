@@ -191,12 +191,14 @@ impl<'f> Reader<'f> {
     fn text_list(&mut self, node: &Node, path: &str) -> Option<Vec<(String, Node)>> {
         let items = self.list(node, path)?;
         let mut values: Vec<(String, Node)> = Vec::new();
+        // A set, not a scan of `values`: a list may hold thousands of levels.
+        let mut seen: std::collections::BTreeSet<String> = std::collections::BTreeSet::new();
         let mut complete = true;
         for (index, item) in items.iter().enumerate() {
             let item_path = format!("{path}[{index}]");
             match self.text(item, &item_path) {
                 Some(text) => {
-                    if values.iter().any(|(existing, _)| existing == &text) {
+                    if !seen.insert(text.clone()) {
                         self.report(ErrorKind::PlanSchema, item, &item_path, format!("\"{text}\" is listed twice"));
                         complete = false;
                     } else {
