@@ -2,7 +2,7 @@
 //! (`plan::parse`) and the CSV reader (`data::read_table`): each must answer
 //! with `Ok` or `Err`, never panic, and finish.
 //!
-//! Two sources of inputs:
+//! Three sources of inputs:
 //! - every file in tests/fuzz/regressions/ (`plan-*` files go to the plan
 //!   reader, `csv-*` files to the CSV reader): inputs kept from fuzzing runs
 //!   (tests/fuzz/README.md) and hand-made ones, each named after what it does;
@@ -14,6 +14,9 @@
 //!   than two minutes (the duplicate-key and duplicate-column checks compared
 //!   every name with every earlier one); now each is refused at once with a
 //!   located `limit` error, which is what these tests assert.
+//!
+//! - a small mutation fuzzer (module `mutations`, 256 proptest cases per
+//!   reader) that mutates the seed files on every `cargo test`.
 //!
 //! No timing is asserted (a slow machine must not fail the suite); a
 //! regression to quadratic work shows as a test that takes minutes.
@@ -130,4 +133,95 @@ fn a_header_at_the_column_limit_is_read_and_a_late_duplicate_is_found() {
         .expect_err("a repeated name is an error");
     assert_eq!(error.kind(), ErrorKind::DataFormat);
     assert!(error.problems[0].message.contains(&format!("columns 1 and {}", cairn::data::MAX_COLUMNS)), "{error}");
+}
+
+/// A small mutation fuzzer that runs with every `cargo test` (the cargo-fuzz
+/// targets need a nightly toolchain and run for minutes): the seed files —
+/// the demo plan, the base plan of the bad-input catalogue and their data —
+/// with random byte flips, insertions of plan or CSV punctuation, deletions,
+/// duplicated slices and truncations. Every mutant must be answered with `Ok`
+/// or `Err`; a panic fails the test and proptest shrinks the mutation.
+mod mutations {
+    use proptest::prelude::*;
+    use std::path::PathBuf;
+
+    fn seed(relative: &str) -> Vec<u8> {
+        std::fs::read(PathBuf::from(env!("CARGO_MANIFEST_DIR")).join(relative)).expect("seed file")
+    }
+
+    #[derive(Clone, Debug)]
+    enum Mutation {
+        Flip { at: usize, bit: u8 },
+        Insert { at: usize, text: &'static str },
+        Delete { at: usize, length: usize },
+        Duplicate { at: usize, length: usize },
+        Truncate { at: usize },
+    }
+
+    const PIECES: &[&str] = &["[", "]", "{", "}", ":", ": ", "- ", ",", "\n", "\r\n", "\"", "'", "#", "&a ", "*a", "!t ", "---\n", "\t", "|\n", "? ", "\u{FEFF}", "\u{e9}", "\u{0}", "1e999", "~"];
+
+    fn mutation() -> impl Strategy<Value = Mutation> {
+        // Positions are fractions of the current length, resolved when applied.
+        prop_oneof![
+            (any::<usize>(), 0u8..8).prop_map(|(at, bit)| Mutation::Flip { at, bit }),
+            (any::<usize>(), prop::sample::select(PIECES)).prop_map(|(at, text)| Mutation::Insert { at, text }),
+            (any::<usize>(), 1usize..64).prop_map(|(at, length)| Mutation::Delete { at, length }),
+            (any::<usize>(), 1usize..256).prop_map(|(at, length)| Mutation::Duplicate { at, length }),
+            any::<usize>().prop_map(|at| Mutation::Truncate { at }),
+        ]
+    }
+
+    fn apply(mut bytes: Vec<u8>, mutations: &[Mutation]) -> Vec<u8> {
+        for mutation in mutations {
+            let length = bytes.len().max(1);
+            match *mutation {
+                Mutation::Flip { at, bit } => {
+                    if let Some(byte) = bytes.get_mut(at % length) {
+                        *byte ^= 1 << bit;
+                    }
+                }
+                Mutation::Insert { at, text } => {
+                    let at = at % (bytes.len() + 1);
+                    bytes.splice(at..at, text.bytes());
+                }
+                Mutation::Delete { at, length: count } => {
+                    let at = at % length;
+                    let end = (at + count).min(bytes.len());
+                    if at < end {
+                        bytes.drain(at..end);
+                    }
+                }
+                Mutation::Duplicate { at, length: count } => {
+                    let at = at % length;
+                    let end = (at + count).min(bytes.len());
+                    if at < end {
+                        let slice: Vec<u8> = bytes[at..end].to_vec();
+                        bytes.splice(end..end, slice);
+                    }
+                }
+                Mutation::Truncate { at } => bytes.truncate(at % length),
+            }
+        }
+        bytes
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig { cases: 256, failure_persistence: None, ..ProptestConfig::default() })]
+
+        #[test]
+        fn mutated_plans_never_panic(which in 0usize..2, mutations in prop::collection::vec(mutation(), 1..12)) {
+            let original = seed(["plans/demo/plan.yaml", "tests/cases/base/plan.yaml"][which]);
+            let bytes = apply(original, &mutations);
+            let outcome = std::panic::catch_unwind(|| cairn::plan::parse(&bytes, "plan.yaml").is_ok());
+            prop_assert!(outcome.is_ok(), "the plan reader panicked on {:?}", String::from_utf8_lossy(&bytes));
+        }
+
+        #[test]
+        fn mutated_data_files_never_panic(which in 0usize..3, mutations in prop::collection::vec(mutation(), 1..12)) {
+            let original = seed(["plans/demo/data/allocation.csv", "tests/cases/base/data/subjects.csv", "tests/cases/base/data/allocation.csv"][which]);
+            let bytes = apply(original, &mutations);
+            let outcome = std::panic::catch_unwind(|| cairn::data::read_table(&bytes, "data.csv").is_ok());
+            prop_assert!(outcome.is_ok(), "the CSV reader panicked on {:?}", String::from_utf8_lossy(&bytes));
+        }
+    }
 }
