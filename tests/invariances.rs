@@ -239,6 +239,7 @@ fn compare(actual: &Value, expected: &Value, path: &str, differences: &mut Vec<S
         (Value::Number(a), Value::Number(b)) => {
             let (a, b) = (a.as_f64().unwrap_or(f64::NAN), b.as_f64().unwrap_or(f64::NAN));
             let scale = a.abs().max(b.abs()).max(FLOOR);
+            // Written negated so that a NaN (which compares false) counts as a difference.
             if !((a - b).abs() <= TOLERANCE * scale) {
                 differences.push(format!("{path}: {a:e} vs expected {b:e} (relative difference {:.2e})", (a - b).abs() / scale));
             }

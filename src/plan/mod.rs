@@ -438,10 +438,10 @@ fn resolve_inside(folder: &Path, relative: &str, plan_file: &str) -> Result<Path
 pub fn load(path: &Path) -> Result<LoadedPlan, Error> {
     let file_name = path.file_name().map(|name| name.to_string_lossy().into_owned()).unwrap_or_else(|| path.display().to_string());
     // Refuse an oversized file before reading it into memory.
-    if let Ok(metadata) = std::fs::metadata(path) {
-        if metadata.len() > limits::MAX_PLAN_BYTES as u64 {
-            return Err(plan_too_large(metadata.len(), &file_name));
-        }
+    if let Ok(metadata) = std::fs::metadata(path)
+        && metadata.len() > limits::MAX_PLAN_BYTES as u64
+    {
+        return Err(plan_too_large(metadata.len(), &file_name));
     }
     let bytes = std::fs::read(path).map_err(|cause| Error::io(&path.display().to_string(), "read the plan", &cause))?;
     let plan = parse(&bytes, &file_name)?;
