@@ -1,7 +1,7 @@
 //! The catalogue of bad inputs: every case in tests/cases/bad/ starts from a
 //! copy of tests/cases/base/ (a small valid study), changes one thing
-//! (`edits.json`: exact text replacements; `files/`: files laid over the
-//! copy), runs `cairn check plan.yaml` (or the command in `command.txt`) and
+//! (`edits.json`: exact text replacements, optionally repeated; `files/`:
+//! files laid over the copy), runs `cairn check plan.yaml` (or the command in `command.txt`) and
 //! must:
 //! - exit with code 2 (bad input), not panic (exit 101) or fail internally (1);
 //! - print exactly the stored message in `expected.txt`, which names the file,
@@ -21,6 +21,20 @@ struct Edit {
     file: String,
     find: String,
     replace: String,
+    /// When given, the replacement is `replace` written this many times, with
+    /// `{n}` in it standing for 1, 2, …: how the limit cases build a plan with
+    /// 201 analyses or a header with 10 001 columns without storing it.
+    #[serde(default)]
+    repeat: Option<usize>,
+}
+
+impl Edit {
+    fn replacement(&self) -> String {
+        match self.repeat {
+            None => self.replace.clone(),
+            Some(count) => (1..=count).map(|index| self.replace.replace("{n}", &index.to_string())).collect(),
+        }
+    }
 }
 
 fn apply_case(case: &Path, study: &Path) {
@@ -31,7 +45,7 @@ fn apply_case(case: &Path, study: &Path) {
             let path = study.join(&edit.file);
             let text = std::fs::read_to_string(&path).expect("read file to edit");
             assert_eq!(text.matches(&edit.find).count(), 1, "{}: edit target {:?} must occur exactly once in {}", case.display(), edit.find, edit.file);
-            std::fs::write(&path, text.replacen(&edit.find, &edit.replace, 1)).expect("write edited file");
+            std::fs::write(&path, text.replacen(&edit.find, &edit.replacement(), 1)).expect("write edited file");
         }
     }
     let files = case.join("files");

@@ -48,6 +48,18 @@ pub fn read_table(bytes: &[u8], file: &str) -> Result<Table, Error> {
         Ok(record) => record.iter().map(|header| header.trim().to_string()).collect(),
         Err(cause) => return Err(located(Some(1), format!("cannot read the header row: {}", describe_csv(&cause)))),
     };
+    if headers.len() > super::MAX_COLUMNS {
+        return Err(Error::one(
+            Problem::new(
+                ErrorKind::Limit,
+                format!("the header row has {} columns; cairn reads data files of at most {} columns", headers.len(), super::MAX_COLUMNS),
+            )
+            .at(Location { file: file.to_string(), line: Some(1), column: None, path: None }),
+        ));
+    }
+    // Each name's first column, so that a repeated name is found without
+    // comparing it with every earlier one.
+    let mut first_column: std::collections::BTreeMap<&str, usize> = std::collections::BTreeMap::new();
     for (index, header) in headers.iter().enumerate() {
         if header.is_empty() {
             return Err(Error::one(
@@ -55,12 +67,13 @@ pub fn read_table(bytes: &[u8], file: &str) -> Result<Table, Error> {
                     .at(Location { file: file.to_string(), line: Some(1), column: Some(index + 1), path: None }),
             ));
         }
-        if let Some(first) = headers[..index].iter().position(|earlier| earlier == header) {
+        if let Some(&first) = first_column.get(header.as_str()) {
             return Err(Error::one(
                 Problem::new(ErrorKind::DataFormat, format!("column name \"{header}\" appears twice (columns {} and {})", first + 1, index + 1))
                     .at(Location { file: file.to_string(), line: Some(1), column: Some(index + 1), path: None }),
             ));
         }
+        first_column.insert(header.as_str(), index);
     }
     let mut rows = Vec::new();
     let mut lines = Vec::new();
@@ -111,6 +124,18 @@ mod tests {
         let error = read_table(b"ID,X\n1,2\n3,4,5\n", "a.csv").unwrap_err();
         assert_eq!(error.kind(), ErrorKind::DataFormat);
         assert_eq!(error.problems[0].location.as_ref().and_then(|l| l.line), Some(3));
+    }
+
+    #[test]
+    fn too_many_columns_is_a_limit_error_on_the_header_line() {
+        let header = |count: usize| (0..count).map(|index| format!("C{index}")).collect::<Vec<_>>().join(",");
+        let row = |count: usize| vec!["1"; count].join(",");
+        let within = format!("{}\n{}\n", header(super::super::MAX_COLUMNS), row(super::super::MAX_COLUMNS));
+        assert!(read_table(within.as_bytes(), "a.csv").is_ok());
+        let beyond = format!("{}\n{}\n", header(super::super::MAX_COLUMNS + 1), row(super::super::MAX_COLUMNS + 1));
+        let error = read_table(beyond.as_bytes(), "a.csv").unwrap_err();
+        assert_eq!(error.kind(), ErrorKind::Limit);
+        assert_eq!(error.problems[0].location.as_ref().and_then(|l| l.line), Some(1));
     }
 
     #[test]

@@ -26,6 +26,16 @@ use crate::error::{Error, ErrorKind, Location, Problem};
 /// The largest data file cairn reads, in bytes (stated in the README).
 pub const MAX_FILE_BYTES: u64 = 2 * 1024 * 1024 * 1024;
 
+/// The most columns in one data file (stated in the README). Generous, because a
+/// subjects file exported from a study database often carries many columns the
+/// plan does not use; the bound keeps the header checks (each name against the
+/// ones before it) quick.
+pub const MAX_COLUMNS: usize = 10_000;
+
+/// The most levels a factor without declared levels may show in the data; the
+/// same bound as for levels declared in the plan ([`crate::plan::limits::MAX_LEVELS`]).
+pub const MAX_LEVELS: usize = crate::plan::limits::MAX_LEVELS;
+
 /// Check that `bytes` are UTF-8 and return the text without a leading BOM.
 /// An invalid byte is reported with its line and column (in characters).
 pub fn decode_utf8<'a>(bytes: &'a [u8], file: &str) -> Result<&'a str, Error> {

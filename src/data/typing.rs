@@ -271,6 +271,17 @@ fn type_column(
             let mut levels: Vec<String> = rows.iter().map(|&row| cell(row)).filter(|text| !is_missing(text)).map(str::to_string).collect();
             levels.sort();
             levels.dedup();
+            if levels.len() > super::MAX_LEVELS {
+                // Every level becomes a design column downstream; refuse rather than build them.
+                collector.push(
+                    Problem::new(
+                        ErrorKind::Limit,
+                        format!("the column holds {} different values; a factor may have at most {} levels", levels.len(), super::MAX_LEVELS),
+                    )
+                    .at(Location { file: table.file.clone(), line: Some(1), column: Some(column + 1), path: table.headers.get(column).map(|header| format!("column {header}")) }),
+                );
+                return Column::Categorical { levels: Vec::new(), codes: vec![None; rows.len()] };
+            }
             let codes = rows
                 .iter()
                 .map(|&row| {

@@ -20,6 +20,31 @@ use std::path::{Path, PathBuf};
 /// The schema version this build of cairn reads.
 pub const SCHEMA_VERSION: u64 = 1;
 
+/// Limits on what a plan may hold (stated in the README's "Limits" table).
+/// Each is far beyond any real trial's plan; they exist so that a malformed or
+/// hostile file is refused with a located error instead of exhausting memory or
+/// time (every count multiplies work downstream: arms give pairwise contrasts,
+/// hypotheses a square transition matrix, levels design columns).
+pub mod limits {
+    /// The largest plan file, in bytes (1 MiB; the demo plan is about 7 KiB).
+    pub const MAX_PLAN_BYTES: usize = 1024 * 1024;
+    /// The most analyses in one plan.
+    pub const MAX_ANALYSES: usize = 200;
+    /// The most variables declared under `variables`.
+    pub const MAX_VARIABLES: usize = 1_000;
+    /// The most levels of one factor or ordinal variable (declared in the plan or, for a
+    /// factor without declared levels, found in the data).
+    pub const MAX_LEVELS: usize = 10_000;
+    /// The most entries in one YAML list or mapping (which bounds declared levels).
+    pub const MAX_ENTRIES: usize = super::yaml::MAX_ENTRIES;
+    /// The most treatment arms.
+    pub const MAX_ARMS: usize = 100;
+    /// The most hypotheses in the confirmatory family.
+    pub const MAX_HYPOTHESES: usize = 200;
+    /// The deepest nesting of lists and mappings.
+    pub const MAX_NESTING: usize = super::yaml::MAX_NESTING;
+}
+
 /// A validated plan.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Plan {
@@ -463,6 +488,12 @@ fn resolve_inside(folder: &Path, relative: &str, plan_file: &str) -> Result<Path
 /// Read and validate a plan file.
 pub fn load(path: &Path) -> Result<LoadedPlan, Error> {
     let file_name = path.file_name().map(|name| name.to_string_lossy().into_owned()).unwrap_or_else(|| path.display().to_string());
+    // Refuse an oversized file before reading it into memory.
+    if let Ok(metadata) = std::fs::metadata(path)
+        && metadata.len() > limits::MAX_PLAN_BYTES as u64
+    {
+        return Err(plan_too_large(metadata.len(), &file_name));
+    }
     let bytes = std::fs::read(path).map_err(|cause| Error::io(&path.display().to_string(), "read the plan", &cause))?;
     let plan = parse(&bytes, &file_name)?;
     let folder = path.parent().map(Path::to_path_buf).unwrap_or_default();
@@ -472,7 +503,17 @@ pub fn load(path: &Path) -> Result<LoadedPlan, Error> {
 
 /// Validate plan bytes; `file` names the file in errors.
 pub fn parse(bytes: &[u8], file: &str) -> Result<Plan, Error> {
+    if bytes.len() > limits::MAX_PLAN_BYTES {
+        return Err(plan_too_large(bytes.len() as u64, file));
+    }
     let text = crate::data::decode_utf8(bytes, file)?;
     let root = yaml::parse(text, file)?;
     validate::validate(&root, file)
+}
+
+fn plan_too_large(bytes: u64, file: &str) -> Error {
+    Error::one(
+        Problem::new(ErrorKind::Limit, format!("the plan file has {bytes} bytes; cairn reads plans of at most {} bytes", limits::MAX_PLAN_BYTES))
+            .at(Location::file(file)),
+    )
 }

@@ -188,12 +188,14 @@ impl<'f> Reader<'f> {
     fn text_list(&mut self, node: &Node, path: &str) -> Option<Vec<(String, Node)>> {
         let items = self.list(node, path)?;
         let mut values: Vec<(String, Node)> = Vec::new();
+        // A set, not a scan of `values`: a list may hold thousands of levels.
+        let mut seen: std::collections::BTreeSet<String> = std::collections::BTreeSet::new();
         let mut complete = true;
         for (index, item) in items.iter().enumerate() {
             let item_path = format!("{path}[{index}]");
             match self.text(item, &item_path) {
                 Some(text) => {
-                    if values.iter().any(|(existing, _)| existing == &text) {
+                    if !seen.insert(text.clone()) {
                         self.report(ErrorKind::PlanSchema, item, &item_path, format!("\"{text}\" is listed twice"));
                         complete = false;
                     } else {
@@ -365,6 +367,20 @@ fn read_multiplicity(
                 reader.report(ErrorKind::PlanSchema, list_node, &fields.child("hypotheses"), "a family needs at least one hypothesis".to_string());
                 complete = false;
             }
+            // The graphical procedure holds an m × m matrix of transitions and the
+            // closed-testing procedures grow faster still, so the family is bounded.
+            let items = if items.len() > limits::MAX_HYPOTHESES {
+                reader.report(
+                    ErrorKind::Limit,
+                    list_node,
+                    &fields.child("hypotheses"),
+                    format!("the family has {} hypotheses; cairn tests at most {} together", items.len(), limits::MAX_HYPOTHESES),
+                );
+                complete = false;
+                &items[..0]
+            } else {
+                items
+            };
             for (index, item) in items.iter().enumerate() {
                 let item_path = format!("{}[{index}]", fields.child("hypotheses"));
                 let Some(entry) = reader.mapping(item, &item_path, &["id", "label", "analysis", "contrast", "weight"], &["id", "analysis", "contrast"]) else {
@@ -544,7 +560,18 @@ fn read_study(reader: &mut Reader<'_>, node: &Node, path: &str) -> Option<Study>
 
 fn read_variables(reader: &mut Reader<'_>, node: &Node, path: &str) -> Vec<Variable> {
     let mut variables = Vec::new();
-    for (name, key_node, definition) in reader.named_entries(node, path) {
+    let entries = reader.named_entries(node, path);
+    if entries.len() > limits::MAX_VARIABLES {
+        reader.report(
+            ErrorKind::Limit,
+            node,
+            path,
+            format!("the plan declares {} variables; cairn reads at most {}", entries.len(), limits::MAX_VARIABLES),
+        );
+        // The definitions are still read (the YAML entry limit keeps them few
+        // enough), so that references to them do not add misleading problems.
+    }
+    for (name, key_node, definition) in entries {
         let entry_path = join_path(path, name);
         if reader.identifier(key_node, &entry_path).is_none() {
             continue;
@@ -706,6 +733,15 @@ fn read_treatment(reader: &mut Reader<'_>, node: &Node, path: &str, variables: &
             reader.report(ErrorKind::PlanSchema, value, &fields.child("levels"), format!("a trial needs at least two arms; found {}", levels.len()));
             return None;
         }
+        if levels.len() > limits::MAX_ARMS {
+            reader.report(
+                ErrorKind::Limit,
+                value,
+                &fields.child("levels"),
+                format!("the plan has {} arms; cairn compares at most {}", levels.len(), limits::MAX_ARMS),
+            );
+            return None;
+        }
         Some(levels)
     });
     let level_names: Vec<String> = levels.iter().flatten().map(|(text, _)| text.clone()).collect();
@@ -817,6 +853,16 @@ fn read_analyses(
     let Some(items) = reader.list(node, path) else { return Vec::new() };
     if items.is_empty() {
         reader.report(ErrorKind::PlanSchema, node, path, "a plan needs at least one analysis".to_string());
+    }
+    if items.len() > limits::MAX_ANALYSES {
+        reader.report(
+            ErrorKind::Limit,
+            node,
+            path,
+            format!("the plan has {} analyses; cairn runs at most {} in one plan", items.len(), limits::MAX_ANALYSES),
+        );
+        // The analyses are still read, as for the variables, so that the
+        // multiplicity section's references to them do not add problems.
     }
     let mut analyses: Vec<Analysis> = Vec::new();
     for (index, item) in items.iter().enumerate() {

@@ -8,11 +8,24 @@
 //!
 //! This module knows YAML, not plans: it rejects what a plan must never
 //! contain at the syntax level (duplicate keys, aliases, tags, several
-//! documents) and nothing else.
+//! documents, nesting deeper than [`MAX_NESTING`], more than [`MAX_ENTRIES`]
+//! entries in one list or mapping) and nothing else.
 
 use crate::error::{Error, ErrorKind, Location, Problem};
+use std::collections::BTreeMap;
 use yaml_rust2::parser::{Event, MarkedEventReceiver, Parser};
 use yaml_rust2::scanner::{Marker, TScalarStyle};
+
+/// The deepest nesting of lists and mappings a plan may have (stated in the
+/// README). A real plan nests about five levels; the limit keeps the tree, and
+/// every recursive walk over it (validation, comparison, dropping), far from
+/// the end of the stack however the input is written.
+pub const MAX_NESTING: usize = 64;
+
+/// The most entries in one list or mapping of a plan (stated in the README). It
+/// bounds, among others, the levels a plan can declare for one factor, and the
+/// work that validation does per list.
+pub const MAX_ENTRIES: usize = 10_000;
 
 /// A YAML node with its 1-based position.
 #[derive(Debug, Clone, PartialEq)]
@@ -83,10 +96,38 @@ pub fn parse(text: &str, file: &str) -> Result<Node, Error> {
                 .at(Location { file: file.to_string(), line: Some(line), column: Some(column), path: None }),
         ));
     }
-    let mut builder = TreeBuilder { file: file.to_string(), stack: Vec::new(), root: None, problems: Vec::new(), documents: 0 };
+    let mut builder = TreeBuilder { file: file.to_string(), stack: Vec::new(), root: None, problems: Vec::new(), documents: 0, stopped: false };
     let mut parser = Parser::new_from_str(text);
-    if let Err(scan_error) = parser.load(&mut builder, true) {
+    // The events are pulled one by one here rather than through `Parser::load`,
+    // which recurses once per nesting level and so overflows the stack on a few
+    // thousand nested block mappings (found with a hand-made input of 1 000
+    // levels). Pulling also stops the scan as soon as a limit is passed.
+    let loaded = loop {
+        match parser.next_token() {
+            Ok((event, marker)) => {
+                let end = event == Event::StreamEnd;
+                builder.on_event(event, marker);
+                if end || builder.stopped {
+                    break Ok(());
+                }
+            }
+            Err(scan_error) => break Err(scan_error),
+        }
+    };
+    if builder.stopped {
+        // A limit was passed; it comes first in the file, before any later
+        // syntax error (such as the parser's own, deeper, recursion limit).
+        return Err(Error { problems: builder.problems });
+    }
+    if let Err(scan_error) = loaded {
         let marker = scan_error.marker();
+        if scan_error.info().contains("recursion limit") {
+            // yaml-rust2 reads ahead over a run of opening brackets before it
+            // emits their events, so nesting deeper than its own bound (256
+            // flow levels) stops in its scanner before the builder sees level
+            // 65. It is the same limit to the user.
+            return Err(Error::one(nesting_limit().at(location_of(file, marker))));
+        }
         return Err(Error::one(
             Problem::new(ErrorKind::PlanSyntax, format!("malformed YAML: {}", scan_error.info()))
                 .at(location_of(file, marker)),
@@ -98,6 +139,10 @@ pub fn parse(text: &str, file: &str) -> Result<Node, Error> {
     builder.root.ok_or_else(|| {
         Error::one(Problem::new(ErrorKind::PlanSyntax, "the file is empty; expected a plan").at(Location::file(file)))
     })
+}
+
+fn nesting_limit() -> Problem {
+    Problem::new(ErrorKind::Limit, format!("lists and mappings are nested more than {MAX_NESTING} levels deep; a plan may nest at most {MAX_NESTING}"))
 }
 
 /// The first line whose indentation contains a tab, as (line, column).
@@ -120,7 +165,9 @@ fn location_of(file: &str, marker: &Marker) -> Location {
 
 enum Open {
     Sequence { start: Marker, items: Vec<Node> },
-    Mapping { start: Marker, pairs: Vec<(Node, Node)>, pending_key: Option<Node> },
+    /// `first_line` maps each scalar key's text to the line where it first
+    /// appears, so that a repeated key is found without scanning every earlier one.
+    Mapping { start: Marker, pairs: Vec<(Node, Node)>, pending_key: Option<Node>, first_line: BTreeMap<String, usize> },
 }
 
 struct TreeBuilder {
@@ -129,6 +176,9 @@ struct TreeBuilder {
     root: Option<Node>,
     problems: Vec<Problem>,
     documents: usize,
+    /// Set once a limit is passed (nesting or entries): the problem is recorded
+    /// and every later event is ignored, so no larger tree is ever built.
+    stopped: bool,
 }
 
 impl TreeBuilder {
@@ -137,16 +187,34 @@ impl TreeBuilder {
     }
 
     fn finish(&mut self, node: Node) {
+        let entries = match self.stack.last() {
+            Some(Open::Sequence { items, .. }) => items.len(),
+            Some(Open::Mapping { pairs, pending_key: None, .. }) => pairs.len(),
+            _ => 0,
+        };
+        if entries >= MAX_ENTRIES {
+            // Checked before the entry is added, so no list or mapping ever holds more.
+            self.stopped = true;
+            self.problems.push(
+                Problem::new(ErrorKind::Limit, format!("a list or mapping holds more than {MAX_ENTRIES} entries; a plan may have at most {MAX_ENTRIES} in one"))
+                    .at(Location { file: self.file.clone(), line: Some(node.line), column: Some(node.column), path: None }),
+            );
+            return;
+        }
         match self.stack.last_mut() {
             None => self.root = Some(node),
             Some(Open::Sequence { items, .. }) => items.push(node),
-            Some(Open::Mapping { pairs, pending_key, .. }) => match pending_key.take() {
+            Some(Open::Mapping { pairs, pending_key, first_line, .. }) => match pending_key.take() {
                 None => *pending_key = Some(node),
                 Some(key) => {
                     let duplicate = match &key.value {
-                        NodeValue::Scalar { text, .. } => pairs.iter().find(|(existing, _)| {
-                            matches!(&existing.value, NodeValue::Scalar { text: other, .. } if other == text)
-                        }).map(|(existing, _)| (text.clone(), existing.line)),
+                        NodeValue::Scalar { text, .. } => match first_line.get(text) {
+                            Some(line) => Some((text.clone(), *line)),
+                            None => {
+                                first_line.insert(text.clone(), key.line);
+                                None
+                            }
+                        },
                         _ => None,
                     };
                     let (line, column) = (key.line, key.column);
@@ -168,6 +236,14 @@ impl TreeBuilder {
 
 impl MarkedEventReceiver for TreeBuilder {
     fn on_event(&mut self, event: Event, marker: Marker) {
+        if self.stopped {
+            return;
+        }
+        if matches!(event, Event::SequenceStart(..) | Event::MappingStart(..)) && self.stack.len() >= MAX_NESTING {
+            self.stopped = true;
+            self.problems.push(nesting_limit().at(location_of(&self.file, &marker)));
+            return;
+        }
         match event {
             Event::DocumentStart => {
                 self.documents += 1;
@@ -199,7 +275,7 @@ impl MarkedEventReceiver for TreeBuilder {
                 if anchor != 0 || tag.is_some() {
                     self.problem(marker, "anchors and tags are not allowed in a plan".to_string());
                 }
-                self.stack.push(Open::Mapping { start: marker, pairs: Vec::new(), pending_key: None });
+                self.stack.push(Open::Mapping { start: marker, pairs: Vec::new(), pending_key: None, first_line: BTreeMap::new() });
             }
             Event::SequenceEnd => {
                 if let Some(Open::Sequence { start, items }) = self.stack.pop() {
@@ -245,6 +321,28 @@ mod tests {
         let error = parse("a:\n\tb: 1\n", "p.yaml").unwrap_err();
         let location = error.problems[0].location.clone().expect("located");
         assert_eq!((location.line, location.column), (Some(2), Some(1)));
+    }
+
+    #[test]
+    fn nesting_beyond_the_limit_is_a_located_limit_error() {
+        let within = format!("{}{}", "[".repeat(MAX_NESTING), "]".repeat(MAX_NESTING));
+        assert!(parse(&within, "p.yaml").is_ok());
+        let beyond = format!("a:\n  b: {}{}\n", "[".repeat(MAX_NESTING + 1), "]".repeat(MAX_NESTING + 1));
+        let error = parse(&beyond, "p.yaml").unwrap_err();
+        assert_eq!(error.kind(), ErrorKind::Limit);
+        let location = error.problems[0].location.clone().expect("located");
+        assert_eq!(location.line, Some(2));
+    }
+
+    #[test]
+    fn lists_beyond_the_entry_limit_are_a_located_limit_error() {
+        let items = |count: usize| (0..count).map(|index| format!("L{index}")).collect::<Vec<_>>().join(", ");
+        assert!(parse(&format!("levels: [{}]\n", items(MAX_ENTRIES)), "p.yaml").is_ok());
+        let error = parse(&format!("levels: [{}]\n", items(MAX_ENTRIES + 1)), "p.yaml").unwrap_err();
+        assert_eq!(error.kind(), ErrorKind::Limit);
+        assert_eq!(error.problems.len(), 1);
+        let keys = (0..=MAX_ENTRIES).map(|index| format!("k{index}: 1")).collect::<Vec<_>>().join("\n");
+        assert_eq!(parse(&keys, "p.yaml").unwrap_err().kind(), ErrorKind::Limit);
     }
 
     #[test]
