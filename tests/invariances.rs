@@ -208,8 +208,8 @@ analyses:
         multinomial = analysis("multinomial", "{column: N, kind: nominal}", "{family: multinomial, reference-category: red}"),
     );
     let plan_path = scratch.write("plan.yaml", plan);
-    let inputs = cairn::run::load_inputs(&plan_path).unwrap_or_else(|error| panic!("the study should load: {error}"));
-    let staged = cairn::run::produce(&inputs).unwrap_or_else(|error| panic!("the study should run: {error}"));
+    let inputs = cairn::run::load_inputs(&plan_path, cairn::run::Mode::Unblinded).unwrap_or_else(|error| panic!("the study should load: {error}"));
+    let staged = cairn::run::produce(&inputs, &cairn::run::RunOptions::default()).unwrap_or_else(|error| panic!("the study should run: {error}"));
     let (_, bytes) = staged.files().iter().find(|(name, _)| name == "results.json").expect("results.json is produced");
     let results: Value = serde_json::from_slice(bytes).expect("results.json parses");
     for analysis in results["analyses"].as_array().expect("analyses") {
