@@ -120,3 +120,31 @@ fn the_base_study_itself_is_valid() {
     let outcome = cairn(&scratch.path, &["check", "plan.yaml"]);
     assert_eq!(outcome.code, 0, "{}", outcome.stderr);
 }
+
+#[cfg(unix)]
+#[test]
+fn a_symlink_loop_is_a_located_error() {
+    // A data path that is a symbolic link to itself cannot be read; the error names it.
+    let scratch = Scratch::new("bad-symlink-loop");
+    copy_tree(&root().join("tests/cases/base"), &scratch.path);
+    let path = scratch.path.join("data/subjects.csv");
+    std::fs::remove_file(&path).expect("remove");
+    std::os::unix::fs::symlink("subjects.csv", &path).expect("make a symlink loop");
+    let outcome = cairn(&scratch.path, &["run", "plan.yaml", "--out", "out"]);
+    assert_eq!(outcome.code, 2, "{}", outcome.stderr);
+    assert!(outcome.stderr.starts_with("error: data/subjects.csv: file access:"), "{}", outcome.stderr);
+    assert!(!scratch.path.join("out").exists());
+}
+
+#[test]
+fn a_data_file_beyond_the_size_limit_is_refused_before_reading() {
+    // A sparse file just over the documented limit (README, "Limits"): refused from its size alone.
+    let scratch = Scratch::new("bad-large-file");
+    copy_tree(&root().join("tests/cases/base"), &scratch.path);
+    let file = std::fs::OpenOptions::new().write(true).open(scratch.path.join("data/subjects.csv")).expect("open");
+    file.set_len(cairn::data::MAX_FILE_BYTES + 1).expect("grow the file sparsely");
+    drop(file);
+    let outcome = cairn(&scratch.path, &["check", "plan.yaml"]);
+    assert_eq!(outcome.code, 2, "{}", outcome.stderr);
+    assert!(outcome.stderr.starts_with("error: data/subjects.csv: limit:"), "{}", outcome.stderr);
+}

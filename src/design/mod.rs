@@ -251,6 +251,7 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
     for (index, column) in columns.iter().enumerate() {
         matrix.set_column(index, &nalgebra::DVector::from_column_slice(column));
     }
+    check_covariates(analysis, &terms, &matrix, &column_names, &fail)?;
     let arm_of_row = analysed.iter().map(|&row| data.arms[row]).collect();
     Ok(Design {
         matrix,
@@ -357,4 +358,53 @@ mod tests {
         assert_eq!(outcome.pooled_levels, vec![("B".to_string(), 1)]);
         assert_eq!(outcome.pooled_size, 1);
     }
+}
+
+/// A covariate that carries no information of its own is a mistake in the
+/// plan or the data, not something to fit around: one that is constant over
+/// the analysed subjects, or one that the strata determine exactly (a
+/// site-level characteristic entered beside site). Both are refused, naming
+/// the covariate.
+fn check_covariates(analysis: &Analysis, terms: &[Term], matrix: &DMatrix<f64>, column_names: &[String], fail: &dyn Fn(String) -> Error) -> Result<(), Error> {
+    use crate::models::linear::{fit_least_squares, LeastSquaresOptions};
+    let strata_columns: Vec<usize> = terms
+        .iter()
+        .filter(|term| term.kind == TermKind::Stratum)
+        .flat_map(|term| term.first_column..term.first_column + term.column_count)
+        .collect();
+    for term in terms.iter().filter(|term| term.kind == TermKind::Covariate) {
+        if term.column_count == 0 {
+            return Err(fail(format!("covariate \"{}\" takes a single value in the analysed subjects, so it cannot be adjusted for", term.name)));
+        }
+        for column in term.first_column..term.first_column + term.column_count {
+            let values = matrix.column(column);
+            let first = values[0];
+            if values.iter().all(|&value| value == first) {
+                return Err(fail(format!("covariate \"{}\" is constant ({first}) in the analysed subjects, so it cannot be adjusted for", column_names[column])));
+            }
+            if strata_columns.is_empty() {
+                continue;
+            }
+            // Regress the column on the intercept and the strata; a residual of
+            // (numerically) zero means the strata determine it.
+            let mut predictors = vec![0usize];
+            predictors.extend(&strata_columns);
+            let design = matrix.select_columns(&predictors);
+            let response: Vec<f64> = values.iter().copied().collect();
+            if let Ok(fit) = fit_least_squares(&design, &response, &LeastSquaresOptions::default()) {
+                let mean = response.iter().sum::<f64>() / response.len() as f64;
+                let total: f64 = response.iter().map(|value| (value - mean) * (value - mean)).sum();
+                if total > 0.0 && fit.residual_sum_of_squares <= 1e-20 * total {
+                    let strata: Vec<&str> = terms.iter().filter(|term| term.kind == TermKind::Stratum).map(|term| term.name.as_str()).collect();
+                    return Err(fail(format!(
+                        "covariate column \"{}\" is determined exactly by the strata ({}): it is collinear with them and cannot be adjusted for beside them",
+                        column_names[column],
+                        strata.join(", ")
+                    )));
+                }
+            }
+        }
+    }
+    let _ = analysis;
+    Ok(())
 }
