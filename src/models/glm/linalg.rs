@@ -33,12 +33,37 @@ pub(crate) fn weighted_cross_product(
     while block_start < n_rows {
         let block_end = (block_start + ROW_BLOCK).min(n_rows);
         let block_weights = &weights[block_start..block_end];
+        let column_values = |column: usize| {
+            &data[column * n_rows + block_start..column * n_rows + block_end]
+        };
         for (a, &column_a) in active.iter().enumerate() {
-            let column_a_values =
-                &data[column_a * n_rows + block_start..column_a * n_rows + block_end];
-            for (b, &column_b) in active.iter().enumerate().skip(a) {
-                let column_b_values =
-                    &data[column_b * n_rows + block_start..column_b * n_rows + block_end];
+            let column_a_values = column_values(column_a);
+            // Eight entries of row a at once: their sums are independent chains, so the
+            // processor overlaps them instead of waiting on one addition at a time. Each
+            // entry is still summed over the rows in order, with the same (x_a · x_b) · w
+            // products, so the result is bit for bit that of one entry at a time.
+            let length = column_a_values.len();
+            // Slicing every operand to one length lets the compiler drop bounds checks.
+            let weights_here = &block_weights[..length];
+            let mut b = a;
+            while b + 8 <= n_active {
+                let x: [&[f64]; 8] =
+                    std::array::from_fn(|k| &column_values(active[b + k])[..length]);
+                let mut sums = [0.0_f64; 8];
+                for i in 0..length {
+                    let x_a = column_a_values[i];
+                    let w = weights_here[i];
+                    for k in 0..8 {
+                        sums[k] += x_a * x[k][i] * w;
+                    }
+                }
+                for (k, sum) in sums.iter().enumerate() {
+                    cross[(a, b + k)] += sum;
+                }
+                b += 8;
+            }
+            for (b, &column_b) in active.iter().enumerate().skip(b) {
+                let column_b_values = column_values(column_b);
                 let mut sum = 0.0;
                 for ((&x_a, &x_b), &w) in column_a_values
                     .iter()
