@@ -80,7 +80,10 @@ pub struct Location {
 impl Location {
     /// A location that names only a file.
     pub fn file(file: impl Into<String>) -> Location {
-        Location { file: file.into(), ..Location::default() }
+        Location {
+            file: file.into(),
+            ..Location::default()
+        }
     }
 }
 
@@ -110,7 +113,12 @@ pub struct Problem {
 
 impl Problem {
     pub fn new(kind: ErrorKind, message: impl Into<String>) -> Problem {
-        Problem { kind, location: None, message: message.into(), hint: None }
+        Problem {
+            kind,
+            location: None,
+            message: message.into(),
+            hint: None,
+        }
     }
 
     pub fn at(mut self, location: Location) -> Problem {
@@ -149,7 +157,9 @@ pub struct Error {
 
 impl Error {
     pub fn one(problem: Problem) -> Error {
-        Error { problems: vec![problem] }
+        Error {
+            problems: vec![problem],
+        }
     }
 
     pub fn internal(message: impl Into<String>) -> Error {
@@ -158,19 +168,33 @@ impl Error {
 
     pub fn io(file: &str, action: &str, cause: &std::io::Error) -> Error {
         Error::one(
-            Problem::new(ErrorKind::Io, format!("cannot {action}: {}", describe_io(cause)))
-                .at(Location::file(file)),
+            Problem::new(
+                ErrorKind::Io,
+                format!("cannot {action}: {}", describe_io(cause)),
+            )
+            .at(Location::file(file)),
         )
     }
 
     /// The first problem's kind; tests use it to assert the class of failure.
     pub fn kind(&self) -> ErrorKind {
-        self.problems.first().map(|problem| problem.kind).unwrap_or(ErrorKind::Internal)
+        self.problems
+            .first()
+            .map(|problem| problem.kind)
+            .unwrap_or(ErrorKind::Internal)
     }
 
     /// Documented exit codes: 1 for an internal error, 2 for bad input or usage.
     pub fn exit_code(&self) -> i32 {
-        if self.problems.iter().any(|problem| problem.kind == ErrorKind::Internal) { 1 } else { 2 }
+        if self
+            .problems
+            .iter()
+            .any(|problem| problem.kind == ErrorKind::Internal)
+        {
+            1
+        } else {
+            2
+        }
     }
 }
 
@@ -208,7 +232,10 @@ fn describe_io(cause: &std::io::Error) -> String {
 
 /// The candidate closest to `word` by edit distance, if it is close enough to be
 /// a likely typo (at most a third of the word's length, and at least one edit).
-pub fn did_you_mean<'a>(word: &str, candidates: impl IntoIterator<Item = &'a str>) -> Option<&'a str> {
+pub fn did_you_mean<'a>(
+    word: &str,
+    candidates: impl IntoIterator<Item = &'a str>,
+) -> Option<&'a str> {
     let limit = (word.chars().count() / 3).max(1);
     candidates
         .into_iter()
@@ -251,7 +278,10 @@ mod tests {
 
     #[test]
     fn exit_codes_follow_the_documented_table() {
-        assert_eq!(Error::one(Problem::new(ErrorKind::PlanSchema, "x")).exit_code(), 2);
+        assert_eq!(
+            Error::one(Problem::new(ErrorKind::PlanSchema, "x")).exit_code(),
+            2
+        );
         assert_eq!(Error::internal("x").exit_code(), 1);
     }
 }

@@ -32,4 +32,4 @@ pub mod run;
 pub mod verify;
 
 pub use error::{Error, ErrorKind, Location, Problem};
-pub use plan::{load as load_plan, Plan};
+pub use plan::{Plan, load as load_plan};

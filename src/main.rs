@@ -96,7 +96,11 @@ fn main() -> ExitCode {
     let outcome = match arguments.command {
         Command::Check { plan } => cairn::run::check(&plan).map(|summary| {
             for note in &summary.notes {
-                let location = note.location.as_ref().map(|location| format!("{location}: ")).unwrap_or_default();
+                let location = note
+                    .location
+                    .as_ref()
+                    .map(|location| format!("{location}: "))
+                    .unwrap_or_default();
                 println!("note: {location}{}", note.message);
             }
             println!(
@@ -105,9 +109,39 @@ fn main() -> ExitCode {
             );
             ExitCode::SUCCESS
         }),
-        Command::Lock { plan, by, reason } => lock_plan(&plan, &by, &reason).map(|()| ExitCode::SUCCESS),
-        Command::DryRun { plan, out, seed, force } => run_plan(&plan, &out, force, RunOptions { mode: Mode::DryRun { seed }, only: Vec::new() }, "dry-run"),
-        Command::Run { plan, out, force, only } => run_plan(&plan, &out, force, RunOptions { mode: Mode::Unblinded, only }, "run"),
+        Command::Lock { plan, by, reason } => {
+            lock_plan(&plan, &by, &reason).map(|()| ExitCode::SUCCESS)
+        }
+        Command::DryRun {
+            plan,
+            out,
+            seed,
+            force,
+        } => run_plan(
+            &plan,
+            &out,
+            force,
+            RunOptions {
+                mode: Mode::DryRun { seed },
+                only: Vec::new(),
+            },
+            "dry-run",
+        ),
+        Command::Run {
+            plan,
+            out,
+            force,
+            only,
+        } => run_plan(
+            &plan,
+            &out,
+            force,
+            RunOptions {
+                mode: Mode::Unblinded,
+                only,
+            },
+            "run",
+        ),
         Command::Verify { dir, plan } => verify(&dir, plan.as_deref()),
         Command::History { plan } => cairn::provenance::history::history(&plan).map(|text| {
             print!("{text}");
@@ -127,12 +161,34 @@ fn now() -> String {
     chrono::Utc::now().format("%Y-%m-%dT%H:%M:%SZ").to_string()
 }
 
-fn run_plan(plan: &Path, out: &Path, force: bool, options: RunOptions, command: &str) -> Result<ExitCode, cairn::Error> {
+fn run_plan(
+    plan: &Path,
+    out: &Path,
+    force: bool,
+    options: RunOptions,
+    command: &str,
+) -> Result<ExitCode, cairn::Error> {
     let (inputs, staged) = cairn::run::run(plan, out, force, &options)?;
-    let manifest = staged.files().iter().find(|(name, _)| name == "manifest.json").map(|(_, bytes)| sha256_hex(bytes));
-    let mut recorded = vec![(inputs.plan.file_name.clone(), sha256_hex(&inputs.plan.bytes)), (inputs.plan.plan.data.subjects.clone(), sha256_hex(&inputs.subjects_bytes))];
+    let manifest = staged
+        .files()
+        .iter()
+        .find(|(name, _)| name == "manifest.json")
+        .map(|(_, bytes)| sha256_hex(bytes));
+    let mut recorded = vec![
+        (
+            inputs.plan.file_name.clone(),
+            sha256_hex(&inputs.plan.bytes),
+        ),
+        (
+            inputs.plan.plan.data.subjects.clone(),
+            sha256_hex(&inputs.subjects_bytes),
+        ),
+    ];
     if let Some(bytes) = &inputs.allocation_bytes {
-        recorded.push((inputs.plan.plan.data.treatment.file.clone(), sha256_hex(bytes)));
+        recorded.push((
+            inputs.plan.plan.data.treatment.file.clone(),
+            sha256_hex(bytes),
+        ));
     }
     audit::append(
         plan,
@@ -156,8 +212,14 @@ fn verify(dir: &Path, plan: Option<&Path>) -> Result<ExitCode, cairn::Error> {
     for input in &verification.inputs {
         if input.current_sha256.as_deref() != Some(input.recorded_sha256.as_str()) {
             match &input.current_sha256 {
-                Some(now) => println!("input changed: {} {} (recorded {}, now {})", input.role, input.file, input.recorded_sha256, now),
-                None => println!("input missing: {} {} (recorded {})", input.role, input.file, input.recorded_sha256),
+                Some(now) => println!(
+                    "input changed: {} {} (recorded {}, now {})",
+                    input.role, input.file, input.recorded_sha256, now
+                ),
+                None => println!(
+                    "input missing: {} {} (recorded {})",
+                    input.role, input.file, input.recorded_sha256
+                ),
             }
         }
     }
@@ -177,9 +239,21 @@ fn verify(dir: &Path, plan: Option<&Path>) -> Result<ExitCode, cairn::Error> {
         }
     }
     for difference in &verification.number_differences {
-        println!("number differs: {}: recorded {}, fresh {}{}", difference.path, difference.recorded, difference.fresh, if difference.within_tolerance { " (within tolerance)" } else { "" });
+        println!(
+            "number differs: {}: recorded {}, fresh {}{}",
+            difference.path,
+            difference.recorded,
+            difference.fresh,
+            if difference.within_tolerance {
+                " (within tolerance)"
+            } else {
+                ""
+            }
+        );
     }
-    let plan_path = plan.map(Path::to_path_buf).unwrap_or_else(|| PathBuf::from(&verification.plan_file));
+    let plan_path = plan
+        .map(Path::to_path_buf)
+        .unwrap_or_else(|| PathBuf::from(&verification.plan_file));
     let outcome = match verification.verdict {
         Verdict::Match => "match",
         Verdict::NumericallyEquivalent => "numerically equivalent",
@@ -193,8 +267,19 @@ fn verify(dir: &Path, plan: Option<&Path>) -> Result<ExitCode, cairn::Error> {
                 time: now(),
                 command: "verify".to_string(),
                 plan_sha256: sha256_hex(&plan_bytes),
-                inputs: verification.inputs.iter().map(|input| (input.file.clone(), input.current_sha256.clone().unwrap_or_default())).collect(),
-                manifest_sha256: std::fs::read(dir.join("manifest.json")).ok().map(|bytes| sha256_hex(&bytes)),
+                inputs: verification
+                    .inputs
+                    .iter()
+                    .map(|input| {
+                        (
+                            input.file.clone(),
+                            input.current_sha256.clone().unwrap_or_default(),
+                        )
+                    })
+                    .collect(),
+                manifest_sha256: std::fs::read(dir.join("manifest.json"))
+                    .ok()
+                    .map(|bytes| sha256_hex(&bytes)),
                 outcome: outcome.to_string(),
                 previous_line_sha256: None,
             },
@@ -202,7 +287,11 @@ fn verify(dir: &Path, plan: Option<&Path>) -> Result<ExitCode, cairn::Error> {
     }
     match verification.verdict {
         Verdict::Match => {
-            println!("verified: every input hash and every output byte match ({} outputs); record written to {}", verification.outputs.len(), dir.join("verification.json").display());
+            println!(
+                "verified: every input hash and every output byte match ({} outputs); record written to {}",
+                verification.outputs.len(),
+                dir.join("verification.json").display()
+            );
             Ok(ExitCode::SUCCESS)
         }
         Verdict::NumericallyEquivalent => {
@@ -214,7 +303,10 @@ fn verify(dir: &Path, plan: Option<&Path>) -> Result<ExitCode, cairn::Error> {
             Ok(ExitCode::SUCCESS)
         }
         Verdict::Mismatch => {
-            println!("mismatch: see the differences above; record written to {}", dir.join("verification.json").display());
+            println!(
+                "mismatch: see the differences above; record written to {}",
+                dir.join("verification.json").display()
+            );
             Ok(ExitCode::from(3))
         }
     }
@@ -249,6 +341,12 @@ fn lock_plan(plan: &Path, by: &str, reason: &str) -> Result<(), cairn::Error> {
             previous_line_sha256: None,
         },
     )?;
-    println!("locked {} as record {} (plan SHA-256 {}) in {}", loaded.file_name, record.sequence, record.plan_sha256, lock::lock_path(plan).display());
+    println!(
+        "locked {} as record {} (plan SHA-256 {}) in {}",
+        loaded.file_name,
+        record.sequence,
+        record.plan_sha256,
+        lock::lock_path(plan).display()
+    );
     Ok(())
 }

@@ -12,7 +12,10 @@ use std::path::{Path, PathBuf};
 /// Write `bytes` to `path` through a temporary sibling file and a rename.
 pub fn write_atomically(path: &Path, bytes: &[u8]) -> Result<(), Error> {
     let shown = path.display().to_string();
-    let file_name = path.file_name().map(|name| name.to_string_lossy().into_owned()).unwrap_or_default();
+    let file_name = path
+        .file_name()
+        .map(|name| name.to_string_lossy().into_owned())
+        .unwrap_or_default();
     let temporary = path.with_file_name(format!(".{file_name}.partial-{}", std::process::id()));
     std::fs::write(&temporary, bytes).map_err(|cause| Error::io(&shown, "write", &cause))?;
     std::fs::rename(&temporary, path).map_err(|cause| {
@@ -54,11 +57,20 @@ impl Staged {
         let result = self.write_into(&staging).and_then(|()| {
             if destination.exists() {
                 if !destination.is_dir() {
-                    return Err(Error::one(Problem::new(ErrorKind::OutputExists, "the output path exists and is not a folder").at(Location::file(shown.clone()))));
+                    return Err(Error::one(
+                        Problem::new(
+                            ErrorKind::OutputExists,
+                            "the output path exists and is not a folder",
+                        )
+                        .at(Location::file(shown.clone())),
+                    ));
                 }
-                std::fs::remove_dir_all(destination).map_err(|cause| Error::io(&shown, "remove the previous output folder", &cause))?;
+                std::fs::remove_dir_all(destination).map_err(|cause| {
+                    Error::io(&shown, "remove the previous output folder", &cause)
+                })?;
             }
-            std::fs::rename(&staging, destination).map_err(|cause| Error::io(&shown, "move the finished outputs into place", &cause))
+            std::fs::rename(&staging, destination)
+                .map_err(|cause| Error::io(&shown, "move the finished outputs into place", &cause))
         });
         if result.is_err() {
             let _ = std::fs::remove_dir_all(&staging);
@@ -69,15 +81,19 @@ impl Staged {
     fn write_into(&self, folder: &Path) -> Result<(), Error> {
         let shown = folder.display().to_string();
         if folder.exists() {
-            std::fs::remove_dir_all(folder).map_err(|cause| Error::io(&shown, "clear a stale staging folder", &cause))?;
+            std::fs::remove_dir_all(folder)
+                .map_err(|cause| Error::io(&shown, "clear a stale staging folder", &cause))?;
         }
-        std::fs::create_dir_all(folder).map_err(|cause| Error::io(&shown, "create the staging folder", &cause))?;
+        std::fs::create_dir_all(folder)
+            .map_err(|cause| Error::io(&shown, "create the staging folder", &cause))?;
         for (relative, bytes) in &self.files {
             let path = folder.join(relative);
             if let Some(parent) = path.parent() {
-                std::fs::create_dir_all(parent).map_err(|cause| Error::io(&shown, "create an output folder", &cause))?;
+                std::fs::create_dir_all(parent)
+                    .map_err(|cause| Error::io(&shown, "create an output folder", &cause))?;
             }
-            std::fs::write(&path, bytes).map_err(|cause| Error::io(&path.display().to_string(), "write", &cause))?;
+            std::fs::write(&path, bytes)
+                .map_err(|cause| Error::io(&path.display().to_string(), "write", &cause))?;
         }
         Ok(())
     }
@@ -90,6 +106,9 @@ impl Default for Staged {
 }
 
 fn staging_path(destination: &Path) -> PathBuf {
-    let name = destination.file_name().map(|name| name.to_string_lossy().into_owned()).unwrap_or_else(|| "out".to_string());
+    let name = destination
+        .file_name()
+        .map(|name| name.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "out".to_string());
     destination.with_file_name(format!(".{name}.partial-{}", std::process::id()))
 }

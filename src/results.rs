@@ -464,7 +464,9 @@ impl From<&crate::inference::Estimate> for EstimateInfo {
 
 /// Serialise with two-space indentation and a final newline.
 pub fn to_json(results: &Results) -> Result<Vec<u8>, crate::error::Error> {
-    let mut bytes = serde_json::to_vec_pretty(results).map_err(|cause| crate::error::Error::internal(format!("cannot serialise results: {cause}")))?;
+    let mut bytes = serde_json::to_vec_pretty(results).map_err(|cause| {
+        crate::error::Error::internal(format!("cannot serialise results: {cause}"))
+    })?;
     bytes.push(b'\n');
     Ok(bytes)
 }

@@ -13,7 +13,7 @@ use crate::inference::AnalysisInference;
 use crate::output::Staged;
 use crate::plan::{self, Analysis, LoadedPlan, ModelSpec, Plan};
 use crate::provenance::lock::{self, LoadedLock};
-use crate::provenance::{sha256_hex, TOOL_VERSION};
+use crate::provenance::{TOOL_VERSION, sha256_hex};
 use crate::report;
 use crate::results::*;
 use std::path::Path;
@@ -39,7 +39,10 @@ pub struct RunOptions {
 
 impl Default for RunOptions {
     fn default() -> RunOptions {
-        RunOptions { mode: Mode::Unblinded, only: Vec::new() }
+        RunOptions {
+            mode: Mode::Unblinded,
+            only: Vec::new(),
+        }
     }
 }
 
@@ -86,7 +89,14 @@ pub fn load_inputs(plan_path: &Path, mode: Mode) -> Result<Inputs, Error> {
         Mode::DryRun { seed } => (None, data::dummy_allocation(&plan.plan, &subjects, seed)),
     };
     let study_data = data::assemble(&plan.plan, &subjects, &allocation)?;
-    Ok(Inputs { plan, lock, dry_run, subjects_bytes, allocation_bytes, data: study_data })
+    Ok(Inputs {
+        plan,
+        lock,
+        dry_run,
+        subjects_bytes,
+        allocation_bytes,
+        data: study_data,
+    })
 }
 
 /// `cairn check`: validate the plan and the data it names, and build every
@@ -107,7 +117,12 @@ pub fn check(plan_path: &Path) -> Result<CheckSummary, Error> {
 
 /// `cairn run` and `cairn dry-run`: fit every planned analysis and write the
 /// outputs into `out`. Returns the inputs read and the staged outputs.
-pub fn run(plan_path: &Path, out: &Path, force: bool, options: &RunOptions) -> Result<(Inputs, Staged), Error> {
+pub fn run(
+    plan_path: &Path,
+    out: &Path,
+    force: bool,
+    options: &RunOptions,
+) -> Result<(Inputs, Staged), Error> {
     if out.exists() && !force {
         // Refuse before any work so that a long run does not end in this error.
         Staged::new().commit(out, false)?;
@@ -116,7 +131,13 @@ pub fn run(plan_path: &Path, out: &Path, force: bool, options: &RunOptions) -> R
     let staged = produce(&inputs, options)?;
     staged.commit(out, force)?;
     if let Mode::DryRun { seed } = options.mode {
-        crate::provenance::dry_run::write(plan_path, &inputs.plan.bytes, &inputs.plan.plan.data.subjects, &inputs.subjects_bytes, seed)?;
+        crate::provenance::dry_run::write(
+            plan_path,
+            &inputs.plan.bytes,
+            &inputs.plan.plan.data.subjects,
+            &inputs.subjects_bytes,
+            seed,
+        )?;
     }
     Ok((inputs, staged))
 }
@@ -127,20 +148,40 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
     let mut deviations = Vec::new();
     for id in &options.only {
         if !plan.analyses.iter().any(|analysis| &analysis.id == id) {
-            let known: Vec<&str> = plan.analyses.iter().map(|analysis| analysis.id.as_str()).collect();
+            let known: Vec<&str> = plan
+                .analyses
+                .iter()
+                .map(|analysis| analysis.id.as_str())
+                .collect();
             return Err(Error::one(crate::error::Problem::new(
                 crate::error::ErrorKind::PlanReference,
-                format!("--only names no analysis \"{id}\" (the plan has: {})", known.join(", ")),
+                format!(
+                    "--only names no analysis \"{id}\" (the plan has: {})",
+                    known.join(", ")
+                ),
             )));
         }
     }
     if !options.only.is_empty() {
-        let skipped: Vec<&str> = plan.analyses.iter().filter(|analysis| !options.only.contains(&analysis.id)).map(|analysis| analysis.id.as_str()).collect();
+        let skipped: Vec<&str> = plan
+            .analyses
+            .iter()
+            .filter(|analysis| !options.only.contains(&analysis.id))
+            .map(|analysis| analysis.id.as_str())
+            .collect();
         deviations.push(Deviation {
             code: "COMMAND-LINE-OVERRIDE",
             severity: "major",
             analysis: None,
-            message: format!("--only restricted the run to {}; not run as planned: {}", options.only.join(", "), if skipped.is_empty() { "none".to_string() } else { skipped.join(", ") }),
+            message: format!(
+                "--only restricted the run to {}; not run as planned: {}",
+                options.only.join(", "),
+                if skipped.is_empty() {
+                    "none".to_string()
+                } else {
+                    skipped.join(", ")
+                }
+            ),
         });
     }
     if let (Mode::Unblinded, Some(dry_run)) = (options.mode, &inputs.dry_run) {
@@ -161,7 +202,11 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
                 code: "PLAN-CHANGED-SINCE-DRY-RUN",
                 severity: "minor",
                 analysis: None,
-                message: format!("the plan changed after the blinded dry run (SHA-256 then {}, now {})", dry_run.record.plan_sha256, sha256_hex(&inputs.plan.bytes)),
+                message: format!(
+                    "the plan changed after the blinded dry run (SHA-256 then {}, now {})",
+                    dry_run.record.plan_sha256,
+                    sha256_hex(&inputs.plan.bytes)
+                ),
             });
         }
     }
@@ -187,15 +232,21 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
         _ => {}
     }
     if let Some(record) = &last
-        && record.tool_version != TOOL_VERSION {
-            deviations.push(Deviation {
-                code: "LOCK-TOOL-VERSION",
-                severity: "minor",
-                analysis: None,
-                message: format!("the plan was locked with cairn {} and is run with cairn {}", record.tool_version, TOOL_VERSION),
-            });
-        }
-    if !inputs.data.join.only_in_subjects.is_empty() || !inputs.data.join.only_in_allocation.is_empty() {
+        && record.tool_version != TOOL_VERSION
+    {
+        deviations.push(Deviation {
+            code: "LOCK-TOOL-VERSION",
+            severity: "minor",
+            analysis: None,
+            message: format!(
+                "the plan was locked with cairn {} and is run with cairn {}",
+                record.tool_version, TOOL_VERSION
+            ),
+        });
+    }
+    if !inputs.data.join.only_in_subjects.is_empty()
+        || !inputs.data.join.only_in_allocation.is_empty()
+    {
         deviations.push(Deviation {
             code: "SUBJECTS-UNMATCHED",
             severity: "major",
@@ -209,7 +260,11 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
     }
 
     for (variable, count, places) in &inputs.data.out_of_range {
-        let range = plan.variables.iter().find(|candidate| &candidate.name == variable).and_then(|candidate| candidate.range);
+        let range = plan
+            .variables
+            .iter()
+            .find(|candidate| &candidate.name == variable)
+            .and_then(|candidate| candidate.range);
         let (low, high) = range.unwrap_or((f64::NAN, f64::NAN));
         deviations.push(Deviation {
             code: "VALUE-OUT-OF-RANGE",
@@ -227,7 +282,11 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
         let design = design::build(plan, analysis, &inputs.data)?;
         if let Some(limit) = analysis.max_excluded {
             let in_population: usize = design.in_population.iter().sum();
-            let excluded: usize = design.exclusions.iter().flat_map(|exclusion| exclusion.per_arm.iter()).sum();
+            let excluded: usize = design
+                .exclusions
+                .iter()
+                .flat_map(|exclusion| exclusion.per_arm.iter())
+                .sum();
             if in_population > 0 && excluded as f64 > limit * in_population as f64 {
                 deviations.push(Deviation {
                     code: "MISSING-ABOVE-PLAN",
@@ -262,20 +321,38 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
             },
             only: options.only.clone(),
         },
-        tool: Tool { name: "cairn", version: TOOL_VERSION },
+        tool: Tool {
+            name: "cairn",
+            version: TOOL_VERSION,
+        },
         study: StudyInfo {
             id: plan.study.id.clone(),
             title: plan.study.title.clone(),
             alpha: plan.study.alpha,
             sides: plan.study.sides.count(),
-            arms: plan.data.treatment.arms.iter().map(|arm| ArmInfo { code: arm.code.clone(), label: arm.label.clone() }).collect(),
-            reference_arm: plan.data.treatment.arms[plan.data.treatment.reference].code.clone(),
+            arms: plan
+                .data
+                .treatment
+                .arms
+                .iter()
+                .map(|arm| ArmInfo {
+                    code: arm.code.clone(),
+                    label: arm.label.clone(),
+                })
+                .collect(),
+            reference_arm: plan.data.treatment.arms[plan.data.treatment.reference]
+                .code
+                .clone(),
         },
         plan: PlanInfo {
             file: inputs.plan.file_name.clone(),
             sha256: sha256_hex(&inputs.plan.bytes),
             lock_status: status,
-            lock_records: inputs.lock.as_ref().map(|loaded| loaded.lock.records.len()).unwrap_or(0),
+            lock_records: inputs
+                .lock
+                .as_ref()
+                .map(|loaded| loaded.lock.records.len())
+                .unwrap_or(0),
             last_lock: last,
         },
         inputs: input_list(inputs),
@@ -302,8 +379,12 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
 }
 
 fn lock_status(inputs: &Inputs) -> (&'static str, Option<LockSummary>) {
-    let Some(loaded) = &inputs.lock else { return ("unlocked", None) };
-    let Some(record) = loaded.lock.records.last() else { return ("unlocked", None) };
+    let Some(loaded) = &inputs.lock else {
+        return ("unlocked", None);
+    };
+    let Some(record) = loaded.lock.records.last() else {
+        return ("unlocked", None);
+    };
     let summary = LockSummary {
         sequence: record.sequence,
         locked_at: record.locked_at.clone(),
@@ -313,7 +394,11 @@ fn lock_status(inputs: &Inputs) -> (&'static str, Option<LockSummary>) {
         tool_version: record.tool_version.clone(),
         record_sha256: record.record_sha256.clone(),
     };
-    let status = if record.plan_sha256 == sha256_hex(&inputs.plan.bytes) { "locked" } else { "changed-since-lock" };
+    let status = if record.plan_sha256 == sha256_hex(&inputs.plan.bytes) {
+        "locked"
+    } else {
+        "changed-since-lock"
+    };
     (status, Some(summary))
 }
 
@@ -326,7 +411,12 @@ fn input_list(inputs: &Inputs) -> Vec<Input> {
         bytes: inputs.plan.bytes.len() as u64,
     }];
     if let Some(loaded) = &inputs.lock {
-        list.push(Input { role: "lock record", file: loaded.file_name.clone(), sha256: sha256_hex(&loaded.bytes), bytes: loaded.bytes.len() as u64 });
+        list.push(Input {
+            role: "lock record",
+            file: loaded.file_name.clone(),
+            sha256: sha256_hex(&loaded.bytes),
+            bytes: loaded.bytes.len() as u64,
+        });
     }
     list.push(Input {
         role: "subjects",
@@ -335,13 +425,28 @@ fn input_list(inputs: &Inputs) -> Vec<Input> {
         bytes: inputs.subjects_bytes.len() as u64,
     });
     if let Some(bytes) = &inputs.allocation_bytes {
-        list.push(Input { role: "allocation", file: plan.data.treatment.file.clone(), sha256: sha256_hex(bytes), bytes: bytes.len() as u64 });
+        list.push(Input {
+            role: "allocation",
+            file: plan.data.treatment.file.clone(),
+            sha256: sha256_hex(bytes),
+            bytes: bytes.len() as u64,
+        });
     }
     if let Some(dry_run) = &inputs.dry_run {
-        list.push(Input { role: "dry-run record", file: dry_run.file_name.clone(), sha256: sha256_hex(&dry_run.bytes), bytes: dry_run.bytes.len() as u64 });
+        list.push(Input {
+            role: "dry-run record",
+            file: dry_run.file_name.clone(),
+            sha256: sha256_hex(&dry_run.bytes),
+            bytes: dry_run.bytes.len() as u64,
+        });
     }
     for (name, text) in report::TEMPLATES {
-        list.push(Input { role: "template", file: format!("templates/{name}"), sha256: sha256_hex(text.as_bytes()), bytes: text.len() as u64 });
+        list.push(Input {
+            role: "template",
+            file: format!("templates/{name}"),
+            sha256: sha256_hex(text.as_bytes()),
+            bytes: text.len() as u64,
+        });
     }
     list
 }
@@ -364,7 +469,11 @@ fn subject_flow(plan: &Plan, data: &StudyData) -> SubjectFlow {
                     }
                 }
             }
-            PopulationCount { id: population.id.clone(), label: population.label.clone(), per_arm }
+            PopulationCount {
+                id: population.id.clone(),
+                label: population.label.clone(),
+                per_arm,
+            }
         })
         .collect();
     SubjectFlow {
@@ -378,10 +487,24 @@ fn subject_flow(plan: &Plan, data: &StudyData) -> SubjectFlow {
     }
 }
 
-fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &mut Vec<Deviation>) -> AnalysisResult {
+fn fit_analysis(
+    plan: &Plan,
+    analysis: &Analysis,
+    design: &Design,
+    deviations: &mut Vec<Deviation>,
+) -> AnalysisResult {
     let arms = &plan.data.treatment.arms;
-    let variable_info = |index: usize| VariableInfo { column: plan.variables[index].name.clone(), label: plan.variables[index].display_name().to_string() };
-    let label_of = |name: &str| plan.variables.iter().find(|variable| variable.name == name).map(|variable| variable.display_name().to_string()).unwrap_or_else(|| name.to_string());
+    let variable_info = |index: usize| VariableInfo {
+        column: plan.variables[index].name.clone(),
+        label: plan.variables[index].display_name().to_string(),
+    };
+    let label_of = |name: &str| {
+        plan.variables
+            .iter()
+            .find(|variable| variable.name == name)
+            .map(|variable| variable.display_name().to_string())
+            .unwrap_or_else(|| name.to_string())
+    };
     let mut result = AnalysisResult {
         id: analysis.id.clone(),
         title: analysis.title.clone(),
@@ -389,16 +512,32 @@ fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &
         population: plan.populations[analysis.population].id.clone(),
         estimand: analysis.estimand.as_ref().map(estimand_info),
         endpoint: endpoint_info(plan, analysis),
-        model: ModelInfo { family: analysis.model.family_name(), description: String::new(), details: String::new() },
-        covariates: analysis.covariates.iter().map(|&index| variable_info(index)).collect(),
-        strata: analysis.strata.iter().map(|&index| variable_info(index)).collect(),
+        model: ModelInfo {
+            family: analysis.model.family_name(),
+            description: String::new(),
+            details: String::new(),
+        },
+        covariates: analysis
+            .covariates
+            .iter()
+            .map(|&index| variable_info(index))
+            .collect(),
+        strata: analysis
+            .strata
+            .iter()
+            .map(|&index| variable_info(index))
+            .collect(),
         confidence_level: analysis.confidence_level,
         in_population_per_arm: design.in_population.clone(),
         analysed_per_arm: design.analysed_per_arm.clone(),
         exclusions: design
             .exclusions
             .iter()
-            .map(|exclusion| ExclusionInfo { missing: exclusion.variable.clone(), missing_label: label_of(&exclusion.variable), per_arm: exclusion.per_arm.clone() })
+            .map(|exclusion| ExclusionInfo {
+                missing: exclusion.variable.clone(),
+                missing_label: label_of(&exclusion.variable),
+                per_arm: exclusion.per_arm.clone(),
+            })
             .collect(),
         pooling: design
             .pooling
@@ -408,7 +547,14 @@ fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &
                 stratum_label: label_of(&outcome.variable),
                 below: outcome.threshold,
                 into: outcome.into.clone(),
-                pooled_levels: outcome.pooled_levels.iter().map(|(level, subjects)| PooledLevel { level: level.clone(), subjects: *subjects }).collect(),
+                pooled_levels: outcome
+                    .pooled_levels
+                    .iter()
+                    .map(|(level, subjects)| PooledLevel {
+                        level: level.clone(),
+                        subjects: *subjects,
+                    })
+                    .collect(),
                 pooled_size: outcome.pooled_size,
             })
             .collect(),
@@ -428,8 +574,12 @@ fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &
     let inferred = match &analysis.model {
         ModelSpec::Linear => crate::inference::linear::analyse(design, analysis),
         ModelSpec::Generalized(spec) => crate::inference::glm::analyse(design, analysis, spec),
-        ModelSpec::Cumulative { link } => crate::inference::ordinal::analyse(design, analysis, *link),
-        ModelSpec::Multinomial { reference_category } => crate::inference::nominal::analyse(design, analysis, *reference_category),
+        ModelSpec::Cumulative { link } => {
+            crate::inference::ordinal::analyse(design, analysis, *link)
+        }
+        ModelSpec::Multinomial { reference_category } => {
+            crate::inference::nominal::analyse(design, analysis, *reference_category)
+        }
     };
     match inferred {
         Err(reason) => {
@@ -446,7 +596,12 @@ fn fit_analysis(plan: &Plan, analysis: &Analysis, design: &Design, deviations: &
     result
 }
 
-fn fill(result: &mut AnalysisResult, inference: &AnalysisInference, arms: &[plan::Arm], deviations: &mut Vec<Deviation>) {
+fn fill(
+    result: &mut AnalysisResult,
+    inference: &AnalysisInference,
+    arms: &[plan::Arm],
+    deviations: &mut Vec<Deviation>,
+) {
     let aliased = &inference.fit.aliased_columns;
     if !aliased.is_empty() {
         deviations.push(Deviation {
@@ -457,7 +612,12 @@ fn fill(result: &mut AnalysisResult, inference: &AnalysisInference, arms: &[plan
         });
     }
     for finding in &inference.findings {
-        deviations.push(Deviation { code: finding.code, severity: finding.severity, analysis: Some(result.id.clone()), message: finding.message.clone() });
+        deviations.push(Deviation {
+            code: finding.code,
+            severity: finding.severity,
+            analysis: Some(result.id.clone()),
+            message: finding.message.clone(),
+        });
     }
     result.status = "fitted";
     result.model.description = inference.model_words.clone();
@@ -478,7 +638,13 @@ fn fill(result: &mut AnalysisResult, inference: &AnalysisInference, arms: &[plan
     result.treatment_tests = inference
         .treatment_tests
         .iter()
-        .map(|test| TestInfo { statistic_name: test.statistic_name, statistic: test.statistic, df1: test.df1, df2: test.df2, p_value: test.p_value })
+        .map(|test| TestInfo {
+            statistic_name: test.statistic_name,
+            statistic: test.statistic,
+            df1: test.df1,
+            df2: test.df2,
+            p_value: test.p_value,
+        })
         .collect();
     result.treatment_test_failure = inference.treatment_test_failure.clone();
     result.contrasts = inference
@@ -492,18 +658,33 @@ fn fill(result: &mut AnalysisResult, inference: &AnalysisInference, arms: &[plan
             scale: inference.effect_scale,
             estimate: contrast.estimate.as_ref().ok().map(EstimateInfo::from),
             ratio: match (inference.ratio_name, &contrast.ratio) {
-                (Some(name), Some(ratio)) => Some(RatioInfo { name, estimate: ratio.estimate, lower: ratio.lower, upper: ratio.upper }),
+                (Some(name), Some(ratio)) => Some(RatioInfo {
+                    name,
+                    estimate: ratio.estimate,
+                    lower: ratio.lower,
+                    upper: ratio.upper,
+                }),
                 _ => None,
             },
             interval_method: contrast.interval_method,
-            joint_test: contrast.joint.as_ref().map(|test| TestInfo { statistic_name: test.statistic_name, statistic: test.statistic, df1: test.df1, df2: test.df2, p_value: test.p_value }),
+            joint_test: contrast.joint.as_ref().map(|test| TestInfo {
+                statistic_name: test.statistic_name,
+                statistic: test.statistic,
+                df1: test.df1,
+                df2: test.df2,
+                p_value: test.p_value,
+            }),
             failure: contrast.estimate.as_ref().err().cloned(),
         })
         .collect();
     result.adjusted_means = inference
         .adjusted_means
         .iter()
-        .map(|mean| ArmMeanInfo { arm: arms[mean.arm].code.clone(), estimate: mean.estimate.as_ref().ok().map(EstimateInfo::from), failure: mean.estimate.as_ref().err().cloned() })
+        .map(|mean| ArmMeanInfo {
+            arm: arms[mean.arm].code.clone(),
+            estimate: mean.estimate.as_ref().ok().map(EstimateInfo::from),
+            failure: mean.estimate.as_ref().err().cloned(),
+        })
         .collect();
     result.checks = inference
         .checks
@@ -513,7 +694,13 @@ fn fill(result: &mut AnalysisResult, inference: &AnalysisInference, arms: &[plan
             rows: check
                 .rows
                 .iter()
-                .map(|row| CheckRowInfo { term: row.term.clone(), statistic_name: row.statistic_name, statistic: row.statistic, df: row.df, p_value: row.p_value })
+                .map(|row| CheckRowInfo {
+                    term: row.term.clone(),
+                    statistic_name: row.statistic_name,
+                    statistic: row.statistic,
+                    df: row.df,
+                    p_value: row.p_value,
+                })
                 .collect(),
             failed: check.failed,
             verdict: check.verdict.clone(),
@@ -525,7 +712,15 @@ fn fill(result: &mut AnalysisResult, inference: &AnalysisInference, arms: &[plan
         Some(Ok(summary)) => {
             result.marginal = Some(MarginalInfo {
                 variance: summary.variance.clone(),
-                means: summary.means.iter().map(|(arm, mean, standard_error)| MarginalMeanInfo { arm: arms[*arm].code.clone(), mean: *mean, standard_error: *standard_error }).collect(),
+                means: summary
+                    .means
+                    .iter()
+                    .map(|(arm, mean, standard_error)| MarginalMeanInfo {
+                        arm: arms[*arm].code.clone(),
+                        mean: *mean,
+                        standard_error: *standard_error,
+                    })
+                    .collect(),
                 effects: summary
                     .effects
                     .iter()
@@ -561,10 +756,22 @@ fn manifest(staged: &Staged) -> Result<Vec<u8>, Error> {
         tool_version: &'static str,
         outputs: Vec<Entry<'a>>,
     }
-    let mut outputs: Vec<Entry<'_>> = staged.files().iter().map(|(name, bytes)| Entry { file: name, sha256: sha256_hex(bytes), bytes: bytes.len() }).collect();
+    let mut outputs: Vec<Entry<'_>> = staged
+        .files()
+        .iter()
+        .map(|(name, bytes)| Entry {
+            file: name,
+            sha256: sha256_hex(bytes),
+            bytes: bytes.len(),
+        })
+        .collect();
     outputs.sort_by(|left, right| left.file.cmp(right.file));
-    let mut bytes = serde_json::to_vec_pretty(&Manifest { schema: "cairn-manifest/1", tool_version: TOOL_VERSION, outputs })
-        .map_err(|cause| Error::internal(format!("cannot serialise the manifest: {cause}")))?;
+    let mut bytes = serde_json::to_vec_pretty(&Manifest {
+        schema: "cairn-manifest/1",
+        tool_version: TOOL_VERSION,
+        outputs,
+    })
+    .map_err(|cause| Error::internal(format!("cannot serialise the manifest: {cause}")))?;
     bytes.push(b'\n');
     Ok(bytes)
 }
@@ -575,7 +782,11 @@ fn manifest(staged: &Staged) -> Result<Vec<u8>, Error> {
 /// category or cut-point, the p-value of its joint Wald test. `None` when it
 /// cannot be estimated.
 fn hypothesis_p_value(result: &AnalysisResult, contrast: &str, sides: u32) -> Option<f64> {
-    let rows: Vec<&ContrastInfo> = result.contrasts.iter().filter(|candidate| candidate.id == contrast).collect();
+    let rows: Vec<&ContrastInfo> = result
+        .contrasts
+        .iter()
+        .filter(|candidate| candidate.id == contrast)
+        .collect();
     if rows.len() > 1 {
         // A contrast reported per category or cut-point is tested jointly
         // (a chi-square test, which has no direction).
@@ -586,14 +797,25 @@ fn hypothesis_p_value(result: &AnalysisResult, contrast: &str, sides: u32) -> Op
     if sides == 2 {
         return Some(estimate.p_value);
     }
-    let benefit_statistic = if result.endpoint.higher_is == "better" { estimate.statistic } else { -estimate.statistic };
+    let benefit_statistic = if result.endpoint.higher_is == "better" {
+        estimate.statistic
+    } else {
+        -estimate.statistic
+    };
     match estimate.df {
         Some(df) => crate::inference::distributions::t_upper_p(benefit_statistic, df),
-        None => Some(crate::inference::distributions::normal_upper(benefit_statistic)),
+        None => Some(crate::inference::distributions::normal_upper(
+            benefit_statistic,
+        )),
     }
 }
 
-fn apply_multiplicity(plan: &Plan, spec: &plan::MultiplicitySpec, analyses: &[AnalysisResult], deviations: &mut Vec<Deviation>) -> Result<MultiplicityResult, Error> {
+fn apply_multiplicity(
+    plan: &Plan,
+    spec: &plan::MultiplicitySpec,
+    analyses: &[AnalysisResult],
+    deviations: &mut Vec<Deviation>,
+) -> Result<MultiplicityResult, Error> {
     use crate::multiplicity::Trace;
     let sides = plan.study.sides.count();
     let p_values: Vec<Option<f64>> = spec
@@ -615,8 +837,12 @@ fn apply_multiplicity(plan: &Plan, spec: &plan::MultiplicitySpec, analyses: &[An
             });
         }
     }
-    let outcome = crate::multiplicity::apply(&spec.strategy, &p_values, spec.alpha)
-        .map_err(|error| Error::internal(format!("the multiplicity strategy was validated but the engine refused it: {error}")))?;
+    let outcome =
+        crate::multiplicity::apply(&spec.strategy, &p_values, spec.alpha).map_err(|error| {
+            Error::internal(format!(
+                "the multiplicity strategy was validated but the engine refused it: {error}"
+            ))
+        })?;
     let name = |index: usize| spec.hypotheses[index].id.clone();
     let hypotheses = spec
         .hypotheses
@@ -626,7 +852,9 @@ fn apply_multiplicity(plan: &Plan, spec: &plan::MultiplicitySpec, analyses: &[An
             id: hypothesis.id.clone(),
             label: hypothesis.label.clone(),
             analysis: plan.analyses[hypothesis.analysis].id.clone(),
-            contrast: plan.analyses[hypothesis.analysis].contrasts[hypothesis.contrast].id.clone(),
+            contrast: plan.analyses[hypothesis.analysis].contrasts[hypothesis.contrast]
+                .id
+                .clone(),
             initial_weight: hypothesis.weight,
             raw_p: result.raw_p,
             adjusted_p: Some(result.adjusted_p),
@@ -640,7 +868,13 @@ fn apply_multiplicity(plan: &Plan, spec: &plan::MultiplicitySpec, analyses: &[An
         Trace::Tests(steps) => (
             steps
                 .iter()
-                .map(|step| TestStepInfo { step: step.step, hypothesis: name(step.hypothesis), p_value: step.p_value, local_level: step.local_level, rejected: step.rejected })
+                .map(|step| TestStepInfo {
+                    step: step.step,
+                    hypothesis: name(step.hypothesis),
+                    p_value: step.p_value,
+                    local_level: step.local_level,
+                    rejected: step.rejected,
+                })
                 .collect(),
             Vec::new(),
         ),
@@ -667,7 +901,11 @@ fn apply_multiplicity(plan: &Plan, spec: &plan::MultiplicitySpec, analyses: &[An
         hypotheses,
         tests,
         graph_steps,
-        transitions: if spec.procedure == crate::multiplicity::Procedure::Graphical { spec.transitions.clone() } else { Vec::new() },
+        transitions: if spec.procedure == crate::multiplicity::Procedure::Graphical {
+            spec.transitions.clone()
+        } else {
+            Vec::new()
+        },
     })
 }
 
@@ -682,10 +920,15 @@ fn endpoint_info(plan: &Plan, analysis: &Analysis) -> EndpointInfo {
             plan::Direction::Better => "better",
             plan::Direction::Worse => "worse",
         },
-        event: analysis.endpoint.event.and_then(|event| match &variable.kind {
-            plan::VariableKind::Factor { levels: Some(levels) } => levels.get(event).cloned(),
-            _ => None,
-        }),
+        event: analysis
+            .endpoint
+            .event
+            .and_then(|event| match &variable.kind {
+                plan::VariableKind::Factor {
+                    levels: Some(levels),
+                } => levels.get(event).cloned(),
+                _ => None,
+            }),
     }
 }
 
@@ -699,7 +942,11 @@ fn not_run(plan: &Plan, analysis: &Analysis) -> AnalysisResult {
         population: plan.populations[analysis.population].id.clone(),
         estimand: analysis.estimand.as_ref().map(estimand_info),
         endpoint: endpoint_info(plan, analysis),
-        model: ModelInfo { family: analysis.model.family_name(), description: String::new(), details: String::new() },
+        model: ModelInfo {
+            family: analysis.model.family_name(),
+            description: String::new(),
+            details: String::new(),
+        },
         covariates: Vec::new(),
         strata: Vec::new(),
         confidence_level: analysis.confidence_level,
@@ -749,9 +996,14 @@ fn mask_for_dry_run(results: &mut Results) {
             analysis.marginal_failure = Some(MASKED.to_string());
         }
         for check in &mut analysis.checks {
-            let about_treatment = check.name.contains("Mantel") || check.name.contains("Treatment-by-stratum");
-            check.rows.retain(|row| !about_treatment && row.term != "treatment");
-            check.details.retain(|detail| !detail.contains("odds ratio of"));
+            let about_treatment =
+                check.name.contains("Mantel") || check.name.contains("Treatment-by-stratum");
+            check
+                .rows
+                .retain(|row| !about_treatment && row.term != "treatment");
+            check
+                .details
+                .retain(|detail| !detail.contains("odds ratio of"));
             if about_treatment {
                 check.verdict = MASKED.to_string();
                 check.failed = false;
@@ -774,7 +1026,9 @@ fn mask_for_dry_run(results: &mut Results) {
         family.tests.clear();
         family.graph_steps.clear();
     }
-    results.deviations.retain(|deviation| deviation.code != "HYPOTHESIS-UNTESTABLE" && deviation.code != "CHECK-FAILED");
+    results.deviations.retain(|deviation| {
+        deviation.code != "HYPOTHESIS-UNTESTABLE" && deviation.code != "CHECK-FAILED"
+    });
 }
 
 fn estimand_info(estimand: &plan::Estimand) -> EstimandInfo {
@@ -782,7 +1036,14 @@ fn estimand_info(estimand: &plan::Estimand) -> EstimandInfo {
         treatment: estimand.treatment.clone(),
         population: estimand.population.clone(),
         variable: estimand.variable.clone(),
-        intercurrent_events: estimand.intercurrent_events.iter().map(|event| IntercurrentEventInfo { event: event.event.clone(), strategy: event.strategy.name() }).collect(),
+        intercurrent_events: estimand
+            .intercurrent_events
+            .iter()
+            .map(|event| IntercurrentEventInfo {
+                event: event.event.clone(),
+                strategy: event.strategy.name(),
+            })
+            .collect(),
         summary_measure: estimand.summary_measure.clone(),
     }
 }

@@ -13,7 +13,7 @@
 
 mod common;
 
-use common::{cairn, copy_tree, root, Scratch};
+use common::{Scratch, cairn, copy_tree, root};
 use std::path::Path;
 
 #[derive(serde::Deserialize)]
@@ -32,7 +32,9 @@ impl Edit {
     fn replacement(&self) -> String {
         match self.repeat {
             None => self.replace.clone(),
-            Some(count) => (1..=count).map(|index| self.replace.replace("{n}", &index.to_string())).collect(),
+            Some(count) => (1..=count)
+                .map(|index| self.replace.replace("{n}", &index.to_string()))
+                .collect(),
         }
     }
 }
@@ -40,12 +42,21 @@ impl Edit {
 fn apply_case(case: &Path, study: &Path) {
     let edits = case.join("edits.json");
     if edits.exists() {
-        let edits: Vec<Edit> = serde_json::from_slice(&std::fs::read(&edits).expect("read edits")).expect("parse edits");
+        let edits: Vec<Edit> = serde_json::from_slice(&std::fs::read(&edits).expect("read edits"))
+            .expect("parse edits");
         for edit in edits {
             let path = study.join(&edit.file);
             let text = std::fs::read_to_string(&path).expect("read file to edit");
-            assert_eq!(text.matches(&edit.find).count(), 1, "{}: edit target {:?} must occur exactly once in {}", case.display(), edit.find, edit.file);
-            std::fs::write(&path, text.replacen(&edit.find, &edit.replacement(), 1)).expect("write edited file");
+            assert_eq!(
+                text.matches(&edit.find).count(),
+                1,
+                "{}: edit target {:?} must occur exactly once in {}",
+                case.display(),
+                edit.find,
+                edit.file
+            );
+            std::fs::write(&path, text.replacen(&edit.find, &edit.replacement(), 1))
+                .expect("write edited file");
         }
     }
     let files = case.join("files");
@@ -55,20 +66,36 @@ fn apply_case(case: &Path, study: &Path) {
 }
 
 fn run_case(case: &Path) -> Result<(), String> {
-    let name = case.file_name().and_then(|name| name.to_str()).unwrap_or("?").to_string();
+    let name = case
+        .file_name()
+        .and_then(|name| name.to_str())
+        .unwrap_or("?")
+        .to_string();
     let scratch = Scratch::new(&format!("bad-{name}"));
     copy_tree(&root().join("tests/cases/base"), &scratch.path);
     apply_case(case, &scratch.path);
     let had_output = scratch.path.join("out").exists();
-    let command = std::fs::read_to_string(case.join("command.txt")).unwrap_or_else(|_| "check plan.yaml".to_string());
+    let command = std::fs::read_to_string(case.join("command.txt"))
+        .unwrap_or_else(|_| "check plan.yaml".to_string());
     let arguments: Vec<&str> = command.split_whitespace().collect();
     let outcome = cairn(&scratch.path, &arguments);
     let mut failures = Vec::new();
     if outcome.code != 2 {
-        failures.push(format!("exit code {} (expected 2); stderr:\n{}", outcome.code, outcome.stderr));
+        failures.push(format!(
+            "exit code {} (expected 2); stderr:\n{}",
+            outcome.code, outcome.stderr
+        ));
     }
-    if !outcome.stderr.lines().all(|line| line.starts_with("error: ")) || outcome.stderr.trim().is_empty() {
-        failures.push(format!("every stderr line should be an \"error: \" line; got:\n{}", outcome.stderr));
+    if !outcome
+        .stderr
+        .lines()
+        .all(|line| line.starts_with("error: "))
+        || outcome.stderr.trim().is_empty()
+    {
+        failures.push(format!(
+            "every stderr line should be an \"error: \" line; got:\n{}",
+            outcome.stderr
+        ));
     }
     // Each message must carry a location: a file name, and for content errors a line.
     let first = outcome.stderr.lines().next().unwrap_or("");
@@ -79,14 +106,23 @@ fn run_case(case: &Path) -> Result<(), String> {
         failures.push("an output folder was left behind".to_string());
     }
     if had_output {
-        let entries: Vec<_> = std::fs::read_dir(scratch.path.join("out")).expect("read out").map(|entry| entry.expect("entry").file_name()).collect();
+        let entries: Vec<_> = std::fs::read_dir(scratch.path.join("out"))
+            .expect("read out")
+            .map(|entry| entry.expect("entry").file_name())
+            .collect();
         if entries.len() != 1 {
-            failures.push(format!("the existing output folder was changed: {entries:?}"));
+            failures.push(format!(
+                "the existing output folder was changed: {entries:?}"
+            ));
         }
     }
     let leftovers: Vec<String> = std::fs::read_dir(&scratch.path)
         .expect("read study")
-        .filter_map(|entry| entry.ok().map(|entry| entry.file_name().to_string_lossy().into_owned()))
+        .filter_map(|entry| {
+            entry
+                .ok()
+                .map(|entry| entry.file_name().to_string_lossy().into_owned())
+        })
         .filter(|name| name.contains(".partial-"))
         .collect();
     if !leftovers.is_empty() {
@@ -98,19 +134,42 @@ fn run_case(case: &Path) -> Result<(), String> {
     } else {
         let expected = std::fs::read_to_string(&expected_path).unwrap_or_default();
         if expected != outcome.stderr {
-            failures.push(format!("message differs from expected.txt\n--- expected\n{expected}--- actual\n{}", outcome.stderr));
+            failures.push(format!(
+                "message differs from expected.txt\n--- expected\n{expected}--- actual\n{}",
+                outcome.stderr
+            ));
         }
     }
-    if failures.is_empty() { Ok(()) } else { Err(format!("case {name}:\n{}", failures.join("\n"))) }
+    if failures.is_empty() {
+        Ok(())
+    } else {
+        Err(format!("case {name}:\n{}", failures.join("\n")))
+    }
 }
 
 #[test]
 fn every_bad_input_is_a_located_error_with_exit_code_2_and_no_output() {
-    let mut cases: Vec<_> = std::fs::read_dir(root().join("tests/cases/bad")).expect("cases").map(|entry| entry.expect("entry").path()).collect();
+    let mut cases: Vec<_> = std::fs::read_dir(root().join("tests/cases/bad"))
+        .expect("cases")
+        .map(|entry| entry.expect("entry").path())
+        .collect();
     cases.sort();
-    assert!(cases.len() >= 40, "the catalogue should hold at least 40 cases; found {}", cases.len());
-    let failures: Vec<String> = cases.iter().filter_map(|case| run_case(case).err()).collect();
-    assert!(failures.is_empty(), "{} of {} cases failed:\n\n{}", failures.len(), cases.len(), failures.join("\n\n"));
+    assert!(
+        cases.len() >= 40,
+        "the catalogue should hold at least 40 cases; found {}",
+        cases.len()
+    );
+    let failures: Vec<String> = cases
+        .iter()
+        .filter_map(|case| run_case(case).err())
+        .collect();
+    assert!(
+        failures.is_empty(),
+        "{} of {} cases failed:\n\n{}",
+        failures.len(),
+        cases.len(),
+        failures.join("\n\n")
+    );
 }
 
 #[test]
@@ -132,7 +191,13 @@ fn a_symlink_loop_is_a_located_error() {
     std::os::unix::fs::symlink("subjects.csv", &path).expect("make a symlink loop");
     let outcome = cairn(&scratch.path, &["run", "plan.yaml", "--out", "out"]);
     assert_eq!(outcome.code, 2, "{}", outcome.stderr);
-    assert!(outcome.stderr.starts_with("error: data/subjects.csv: file access:"), "{}", outcome.stderr);
+    assert!(
+        outcome
+            .stderr
+            .starts_with("error: data/subjects.csv: file access:"),
+        "{}",
+        outcome.stderr
+    );
     assert!(!scratch.path.join("out").exists());
 }
 
@@ -141,10 +206,20 @@ fn a_data_file_beyond_the_size_limit_is_refused_before_reading() {
     // A sparse file just over the documented limit (README, "Limits"): refused from its size alone.
     let scratch = Scratch::new("bad-large-file");
     copy_tree(&root().join("tests/cases/base"), &scratch.path);
-    let file = std::fs::OpenOptions::new().write(true).open(scratch.path.join("data/subjects.csv")).expect("open");
-    file.set_len(cairn::data::MAX_FILE_BYTES + 1).expect("grow the file sparsely");
+    let file = std::fs::OpenOptions::new()
+        .write(true)
+        .open(scratch.path.join("data/subjects.csv"))
+        .expect("open");
+    file.set_len(cairn::data::MAX_FILE_BYTES + 1)
+        .expect("grow the file sparsely");
     drop(file);
     let outcome = cairn(&scratch.path, &["check", "plan.yaml"]);
     assert_eq!(outcome.code, 2, "{}", outcome.stderr);
-    assert!(outcome.stderr.starts_with("error: data/subjects.csv: limit:"), "{}", outcome.stderr);
+    assert!(
+        outcome
+            .stderr
+            .starts_with("error: data/subjects.csv: limit:"),
+        "{}",
+        outcome.stderr
+    );
 }

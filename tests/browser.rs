@@ -26,7 +26,7 @@
 
 mod common;
 
-use common::{cairn, copy_tree, read_json, root, Scratch};
+use common::{Scratch, cairn, copy_tree, read_json, root};
 use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::process::{Command, Stdio};
@@ -58,7 +58,9 @@ fn on_ci() -> bool {
 /// The first of `names` found on PATH.
 fn find_program(names: &[&str]) -> Option<PathBuf> {
     let path = std::env::var_os("PATH")?;
-    std::env::split_paths(&path).flat_map(|folder| names.iter().map(move |name| folder.join(name))).find(|candidate| candidate.is_file())
+    std::env::split_paths(&path)
+        .flat_map(|folder| names.iter().map(move |name| folder.join(name)))
+        .find(|candidate| candidate.is_file())
 }
 
 /// A program the test needs: its path, or `None` after saying why the check
@@ -66,12 +68,17 @@ fn find_program(names: &[&str]) -> Option<PathBuf> {
 fn required_program(names: &[&str], package: &str) -> Option<PathBuf> {
     match find_program(names) {
         Some(path) => Some(path),
-        None if on_ci() => panic!("CI=true but none of {names:?} is on PATH; install the Debian package {package} (.ci/run does)"),
+        None if on_ci() => panic!(
+            "CI=true but none of {names:?} is on PATH; install the Debian package {package} (.ci/run does)"
+        ),
         None => {
             // Written to the process's stderr directly, past the test
             // harness's capture of print!, so a skip is visible in a plain
             // `cargo test`.
-            let _ = writeln!(std::io::stderr(), "SKIPPED browser check: none of {names:?} is on PATH (Debian package {package}); it runs on CI");
+            let _ = writeln!(
+                std::io::stderr(),
+                "SKIPPED browser check: none of {names:?} is on PATH (Debian package {package}); it runs on CI"
+            );
             None
         }
     }
@@ -80,7 +87,12 @@ fn required_program(names: &[&str], package: &str) -> Option<PathBuf> {
 /// Run a command to completion and return its standard output, failing the
 /// test if it exits unsuccessfully or hangs.
 fn run(mut command: Command, what: &str) -> Vec<u8> {
-    let mut child = command.stdin(Stdio::null()).stdout(Stdio::piped()).stderr(Stdio::piped()).spawn().unwrap_or_else(|error| panic!("{what}: cannot start: {error}"));
+    let mut child = command
+        .stdin(Stdio::null())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap_or_else(|error| panic!("{what}: cannot start: {error}"));
     // Read both pipes on threads so a chatty process cannot block on a full pipe.
     let mut stdout_pipe = child.stdout.take().expect("stdout pipe");
     let mut stderr_pipe = child.stderr.take().expect("stderr pipe");
@@ -100,22 +112,48 @@ fn run(mut command: Command, what: &str) -> Vec<u8> {
         if started.elapsed() > HANG_GUARD {
             let _ = child.kill();
             let _ = child.wait();
-            panic!("{what}: still running after {} s; killed", HANG_GUARD.as_secs());
+            panic!(
+                "{what}: still running after {} s; killed",
+                HANG_GUARD.as_secs()
+            );
         }
         std::thread::sleep(Duration::from_millis(50));
     };
-    let stdout = stdout_reader.join().expect("stdout reader").expect("read stdout");
-    let stderr = String::from_utf8_lossy(&stderr_reader.join().expect("stderr reader").expect("read stderr")).into_owned();
-    assert!(status.success(), "{what}: exited with {status}; stderr:\n{stderr}");
+    let stdout = stdout_reader
+        .join()
+        .expect("stdout reader")
+        .expect("read stdout");
+    let stderr = String::from_utf8_lossy(
+        &stderr_reader
+            .join()
+            .expect("stderr reader")
+            .expect("read stderr"),
+    )
+    .into_owned();
+    assert!(
+        status.success(),
+        "{what}: exited with {status}; stderr:\n{stderr}"
+    );
     stdout
 }
 
 /// Chromium on `target` (a file in the scratch folder) with a fresh profile.
-fn chromium(binary: &Path, scratch: &Scratch, profile: &str, arguments: &[String], target: &Path, what: &str) -> Vec<u8> {
+fn chromium(
+    binary: &Path,
+    scratch: &Scratch,
+    profile: &str,
+    arguments: &[String],
+    target: &Path,
+    what: &str,
+) -> Vec<u8> {
     let profile_folder = scratch.path.join(format!("profile-{profile}"));
     std::fs::create_dir_all(&profile_folder).expect("profile folder");
     let mut command = Command::new(binary);
-    command.args(CHROMIUM_FLAGS).arg(format!("--user-data-dir={}", profile_folder.display())).args(arguments).arg(file_url(target));
+    command
+        .args(CHROMIUM_FLAGS)
+        .arg(format!("--user-data-dir={}", profile_folder.display()))
+        .args(arguments)
+        .arg(file_url(target));
     run(command, what)
 }
 
@@ -124,7 +162,9 @@ fn file_url(path: &Path) -> String {
     let mut url = String::from("file://");
     for byte in absolute.to_string_lossy().bytes() {
         match byte {
-            b'A'..=b'Z' | b'a'..=b'z' | b'0'..=b'9' | b'/' | b'-' | b'_' | b'.' | b'~' => url.push(byte as char),
+            b'A'..=b'Z' | b'a'..=b'z' | b'0'..=b'9' | b'/' | b'-' | b'_' | b'.' | b'~' => {
+                url.push(byte as char)
+            }
             other => url.push_str(&format!("%{other:02X}")),
         }
     }
@@ -149,7 +189,13 @@ fn decode_png(bytes: &[u8]) -> (u32, u32, Vec<[u8; 3]>) {
     };
     let pixels = data
         .chunks_exact(channels)
-        .map(|sample| if channels >= 3 { [sample[0], sample[1], sample[2]] } else { [sample[0]; 3] })
+        .map(|sample| {
+            if channels >= 3 {
+                [sample[0], sample[1], sample[2]]
+            } else {
+                [sample[0]; 3]
+            }
+        })
         .collect();
     (frame.width, frame.height, pixels)
 }
@@ -164,12 +210,28 @@ struct Ink {
 }
 
 fn measure_ink(pixels: &[[u8; 3]], colours: &[[u8; 3]]) -> Ink {
-    let inked = pixels.iter().filter(|pixel| pixel.iter().any(|channel| *channel < 245)).count();
+    let inked = pixels
+        .iter()
+        .filter(|pixel| pixel.iter().any(|channel| *channel < 245))
+        .count();
     let colour_counts = colours
         .iter()
-        .map(|colour| pixels.iter().filter(|pixel| pixel.iter().zip(colour).all(|(channel, wanted)| channel.abs_diff(*wanted) <= 3)).count())
+        .map(|colour| {
+            pixels
+                .iter()
+                .filter(|pixel| {
+                    pixel
+                        .iter()
+                        .zip(colour)
+                        .all(|(channel, wanted)| channel.abs_diff(*wanted) <= 3)
+                })
+                .count()
+        })
         .collect();
-    Ink { inked_share: inked as f64 / pixels.len().max(1) as f64, colour_counts }
+    Ink {
+        inked_share: inked as f64 / pixels.len().max(1) as f64,
+        colour_counts,
+    }
 }
 
 /// The band behind the report's title (`--band: #eef3f1`) and the accent of
@@ -182,11 +244,20 @@ const ACCENT: [u8; 3] = [0x2f, 0x6f, 0x5e];
 /// page 0) and the style sheet's colours show.
 fn blank_reason(ink: &Ink) -> Option<String> {
     if ink.inked_share <= 0.02 {
-        Some(format!("only {:.3}% of its pixels are not white", ink.inked_share * 100.0))
+        Some(format!(
+            "only {:.3}% of its pixels are not white",
+            ink.inked_share * 100.0
+        ))
     } else if ink.colour_counts[0] <= 2000 {
-        Some(format!("the title band's colour covers only {} pixels; was the inline CSS applied?", ink.colour_counts[0]))
+        Some(format!(
+            "the title band's colour covers only {} pixels; was the inline CSS applied?",
+            ink.colour_counts[0]
+        ))
     } else if ink.colour_counts[1] <= 200 {
-        Some(format!("the accent colour covers only {} pixels; was the inline CSS applied?", ink.colour_counts[1]))
+        Some(format!(
+            "the accent colour covers only {} pixels; was the inline CSS applied?",
+            ink.colour_counts[1]
+        ))
     } else {
         None
     }
@@ -202,7 +273,9 @@ fn a_blank_screenshot_is_recognised_as_blank() {
         encoder.set_color(png::ColorType::Rgb);
         encoder.set_depth(png::BitDepth::Eight);
         let mut writer = encoder.write_header().expect("header");
-        writer.write_image_data(&pixel.repeat(40 * 30)).expect("data");
+        writer
+            .write_image_data(&pixel.repeat(40 * 30))
+            .expect("data");
         writer.finish().expect("finish");
         encoded
     };
@@ -210,11 +283,17 @@ fn a_blank_screenshot_is_recognised_as_blank() {
     assert_eq!((width, height, pixels.len()), (40, 30, 1200));
     let ink = measure_ink(&pixels, &[BAND, ACCENT]);
     assert_eq!(ink.inked_share, 0.0);
-    assert!(blank_reason(&ink).is_some_and(|reason| reason.starts_with("only 0.000%")), "a white image must count as blank");
+    assert!(
+        blank_reason(&ink).is_some_and(|reason| reason.starts_with("only 0.000%")),
+        "a white image must count as blank"
+    );
     let (_, _, pixels) = decode_png(&encode([0, 0, 0]));
     let ink = measure_ink(&pixels, &[BAND, ACCENT]);
     assert_eq!(ink.inked_share, 1.0);
-    assert!(blank_reason(&ink).is_some_and(|reason| reason.contains("title band")), "ink without the report's colours must fail");
+    assert!(
+        blank_reason(&ink).is_some_and(|reason| reason.contains("title band")),
+        "ink without the report's colours must fail"
+    );
 }
 
 /// One measurement: a frame `width` CSS pixels wide, optionally with the
@@ -290,37 +369,81 @@ window.addEventListener("load", function () {{
 
 /// The text of `<pre id="cairn-layout">` in a dumped DOM.
 fn layout_lines(dom: &str) -> Vec<String> {
-    let start = dom.find("<pre id=\"cairn-layout\">").expect("the probe's result element") + "<pre id=\"cairn-layout\">".len();
-    let end = start + dom[start..].find("</pre>").expect("the end of the probe's result");
+    let start = dom
+        .find("<pre id=\"cairn-layout\">")
+        .expect("the probe's result element")
+        + "<pre id=\"cairn-layout\">".len();
+    let end = start
+        + dom[start..]
+            .find("</pre>")
+            .expect("the end of the probe's result");
     dom[start..end].lines().map(str::to_string).collect()
 }
 
 /// Whitespace removed, so text wrapped differently by the PDF still matches.
 fn squeeze(text: &str) -> String {
-    text.chars().filter(|character| !character.is_whitespace()).collect()
+    text.chars()
+        .filter(|character| !character.is_whitespace())
+        .collect()
 }
 
 #[test]
 fn the_demo_report_renders_in_a_real_browser() {
-    let Some(browser) = required_program(&["chromium", "chromium-browser", "google-chrome", "google-chrome-stable"], "chromium") else { return };
+    let Some(browser) = required_program(
+        &[
+            "chromium",
+            "chromium-browser",
+            "google-chrome",
+            "google-chrome-stable",
+        ],
+        "chromium",
+    ) else {
+        return;
+    };
     let scratch = Scratch::new("browser");
     copy_tree(&root().join("plans/demo"), &scratch.path.join("demo"));
-    let outcome = cairn(&scratch.path.join("demo"), &["run", "plan.yaml", "--out", "out"]);
+    let outcome = cairn(
+        &scratch.path.join("demo"),
+        &["run", "plan.yaml", "--out", "out"],
+    );
     assert_eq!(outcome.code, 0, "{}", outcome.stderr);
     let out = scratch.path.join("demo/out");
     let report = out.join("report.html");
     let results = read_json(&out.join("results.json"));
     let analyses = results["analyses"].as_array().expect("analyses");
-    let titles: Vec<&str> = analyses.iter().map(|analysis| analysis["title"].as_str().expect("a title")).collect();
+    let titles: Vec<&str> = analyses
+        .iter()
+        .map(|analysis| analysis["title"].as_str().expect("a title"))
+        .collect();
     assert!(titles.len() >= 2, "the demo has several analyses");
 
     // 1. A screenshot of the first screen is not blank and shows the CSS.
     let screenshot = scratch.path.join("screen.png");
-    chromium(&browser, &scratch, "screenshot", &[format!("--screenshot={}", screenshot.display()), "--window-size=1280,1600".to_string()], &report, "chromium --screenshot");
-    let (width, height, pixels) = decode_png(&std::fs::read(&screenshot).expect("the screenshot file"));
-    assert_eq!((width, height), (1280, 1600), "the screenshot has the window's size");
+    chromium(
+        &browser,
+        &scratch,
+        "screenshot",
+        &[
+            format!("--screenshot={}", screenshot.display()),
+            "--window-size=1280,1600".to_string(),
+        ],
+        &report,
+        "chromium --screenshot",
+    );
+    let (width, height, pixels) =
+        decode_png(&std::fs::read(&screenshot).expect("the screenshot file"));
+    assert_eq!(
+        (width, height),
+        (1280, 1600),
+        "the screenshot has the window's size"
+    );
     let ink = measure_ink(&pixels, &[BAND, ACCENT]);
-    println!("screenshot {width}×{height}: {:.2}% ink, {} band pixels, {} accent pixels", ink.inked_share * 100.0, ink.colour_counts[0], ink.colour_counts[1]);
+    println!(
+        "screenshot {width}×{height}: {:.2}% ink, {} band pixels, {} accent pixels",
+        ink.inked_share * 100.0,
+        ink.colour_counts[0],
+        ink.colour_counts[1]
+    );
     if let Some(reason) = blank_reason(&ink) {
         panic!("the screenshot looks blank: {reason}");
     }
@@ -331,13 +454,43 @@ fn the_demo_report_renders_in_a_real_browser() {
     // Liberation Serif) is installed: a table that fits only with narrow
     // letters would stick out for those readers.
     let frames = [
-        Frame { name: "794", width: 794, font: None },
-        Frame { name: "782", width: 782, font: None },
-        Frame { name: "794-dejavu-serif", width: 794, font: Some("DejaVu Serif") },
+        Frame {
+            name: "794",
+            width: 794,
+            font: None,
+        },
+        Frame {
+            name: "782",
+            width: 782,
+            font: None,
+        },
+        Frame {
+            name: "794-dejavu-serif",
+            width: 794,
+            font: Some("DejaVu Serif"),
+        },
     ];
     let wrapper = scratch.path.join("layout.html");
-    std::fs::write(&wrapper, layout_wrapper(&std::fs::read_to_string(&report).expect("report.html"), &frames)).expect("write the wrapper");
-    let dom = chromium(&browser, &scratch, "layout", &["--dump-dom".to_string(), "--virtual-time-budget=5000".to_string(), "--window-size=900,2000".to_string()], &wrapper, "chromium --dump-dom");
+    std::fs::write(
+        &wrapper,
+        layout_wrapper(
+            &std::fs::read_to_string(&report).expect("report.html"),
+            &frames,
+        ),
+    )
+    .expect("write the wrapper");
+    let dom = chromium(
+        &browser,
+        &scratch,
+        "layout",
+        &[
+            "--dump-dom".to_string(),
+            "--virtual-time-budget=5000".to_string(),
+            "--window-size=900,2000".to_string(),
+        ],
+        &wrapper,
+        "chromium --dump-dom",
+    );
     let dom = String::from_utf8_lossy(&dom).into_owned();
     let lines = layout_lines(&dom);
     let html = std::fs::read_to_string(&report).expect("report.html");
@@ -345,35 +498,100 @@ fn the_demo_report_renders_in_a_real_browser() {
     let expected_figures = html.matches("<svg").count();
     for frame in &frames {
         let width = frame.name;
-        let summary = lines.iter().find(|line| line.starts_with(&format!("frame {width} "))).unwrap_or_else(|| panic!("no measurement at {width} px; probe said:\n{}", lines.join("\n")));
+        let summary = lines
+            .iter()
+            .find(|line| line.starts_with(&format!("frame {width} ")))
+            .unwrap_or_else(|| {
+                panic!(
+                    "no measurement at {width} px; probe said:\n{}",
+                    lines.join("\n")
+                )
+            });
         println!("{summary}");
         let fields: Vec<&str> = summary.split(' ').collect();
-        let value = |name: &str| fields.iter().position(|field| *field == name).and_then(|index| fields.get(index + 1)).and_then(|text| text.parse::<f64>().ok()).unwrap_or(f64::NAN);
-        assert_eq!(value("tables"), expected_tables as f64, "every table measured at {width} px: {summary}");
-        assert_eq!(value("figures"), expected_figures as f64, "every figure measured at {width} px: {summary}");
-        assert_eq!(value("overflowing"), 0.0, "tables or figures stick out of the column at {width} px:\n{}", lines.join("\n"));
-        assert!(value("page-scroll") <= value("page-client"), "the page scrolls sideways at {width} px: {summary}");
+        let value = |name: &str| {
+            fields
+                .iter()
+                .position(|field| *field == name)
+                .and_then(|index| fields.get(index + 1))
+                .and_then(|text| text.parse::<f64>().ok())
+                .unwrap_or(f64::NAN)
+        };
+        assert_eq!(
+            value("tables"),
+            expected_tables as f64,
+            "every table measured at {width} px: {summary}"
+        );
+        assert_eq!(
+            value("figures"),
+            expected_figures as f64,
+            "every figure measured at {width} px: {summary}"
+        );
+        assert_eq!(
+            value("overflowing"),
+            0.0,
+            "tables or figures stick out of the column at {width} px:\n{}",
+            lines.join("\n")
+        );
+        assert!(
+            value("page-scroll") <= value("page-client"),
+            "the page scrolls sideways at {width} px: {summary}"
+        );
     }
 
     // 3. Printed to PDF: a section per analysis, each starting a page.
     let pdf = scratch.path.join("report.pdf");
-    chromium(&browser, &scratch, "pdf", &[format!("--print-to-pdf={}", pdf.display()), "--no-pdf-header-footer".to_string()], &report, "chromium --print-to-pdf");
+    chromium(
+        &browser,
+        &scratch,
+        "pdf",
+        &[
+            format!("--print-to-pdf={}", pdf.display()),
+            "--no-pdf-header-footer".to_string(),
+        ],
+        &report,
+        "chromium --print-to-pdf",
+    );
     let pdf_bytes = std::fs::read(&pdf).expect("the PDF file");
-    assert!(pdf_bytes.starts_with(b"%PDF-"), "--print-to-pdf wrote something that is not a PDF");
-    assert!(pdf_bytes.len() > 50_000, "the PDF is suspiciously small: {} bytes", pdf_bytes.len());
-    let Some(pdftotext) = required_program(&["pdftotext"], "poppler-utils") else { return };
+    assert!(
+        pdf_bytes.starts_with(b"%PDF-"),
+        "--print-to-pdf wrote something that is not a PDF"
+    );
+    assert!(
+        pdf_bytes.len() > 50_000,
+        "the PDF is suspiciously small: {} bytes",
+        pdf_bytes.len()
+    );
+    let Some(pdftotext) = required_program(&["pdftotext"], "poppler-utils") else {
+        return;
+    };
     let mut command = Command::new(pdftotext);
     command.arg(&pdf).arg("-");
     let text = String::from_utf8_lossy(&run(command, "pdftotext")).into_owned();
-    let pages: Vec<String> = text.split('\u{c}').map(squeeze).filter(|page| !page.is_empty()).collect();
+    let pages: Vec<String> = text
+        .split('\u{c}')
+        .map(squeeze)
+        .filter(|page| !page.is_empty())
+        .collect();
     println!("PDF: {} bytes, {} pages", pdf_bytes.len(), pages.len());
     let whole = squeeze(&text);
-    assert_eq!(whole.matches("Whatwasfitted.").count(), titles.len(), "one \"What was fitted\" per analysis");
+    assert_eq!(
+        whole.matches("Whatwasfitted.").count(),
+        titles.len(),
+        "one \"What was fitted\" per analysis"
+    );
     for (index, title) in titles.iter().enumerate() {
         // The template numbers analyses from 3 (after departures and subjects).
         let heading = squeeze(&format!("{}. {title}", index + 3));
-        assert!(whole.contains(&squeeze(title)), "analysis title {title:?} is missing from the PDF");
-        assert!(pages.iter().any(|page| page.starts_with(&heading)), "the section \"{}. {title}\" does not begin a page of the PDF", index + 3);
+        assert!(
+            whole.contains(&squeeze(title)),
+            "analysis title {title:?} is missing from the PDF"
+        );
+        assert!(
+            pages.iter().any(|page| page.starts_with(&heading)),
+            "the section \"{}. {title}\" does not begin a page of the PDF",
+            index + 3
+        );
     }
 
     // Printed at full size. Chromium shrinks a whole printed document to fit
@@ -387,15 +605,34 @@ fn the_demo_report_renders_in_a_real_browser() {
     command.arg("-bbox").arg(&pdf).arg("-");
     let boxes = String::from_utf8_lossy(&run(command, "pdftotext -bbox")).into_owned();
     let words = word_boxes(&boxes);
-    assert!(words.len() > 1000, "only {} word boxes in the PDF", words.len());
+    assert!(
+        words.len() > 1000,
+        "only {} word boxes in the PDF",
+        words.len()
+    );
     let mut heights: Vec<f64> = words.iter().map(|word| word.y_max - word.y_min).collect();
     heights.sort_by(f64::total_cmp);
     let median_height = heights[heights.len() / 2];
-    let left_margin = words.iter().map(|word| word.x_min).fold(f64::INFINITY, f64::min);
-    let right_margin = words.iter().map(|word| word.page_width - word.x_max).fold(f64::INFINITY, f64::min);
-    println!("PDF words: {}, median word height {median_height:.2} pt, margins left {left_margin:.1} pt, right {right_margin:.1} pt", words.len());
-    assert!(median_height >= 10.5, "the PDF's text is small (median word height {median_height:.2} pt): was the page shrunk to fit something too wide?");
-    assert!(right_margin >= left_margin - 1.0, "words printed in the right margin ({right_margin:.1} pt left of {left_margin:.1})");
+    let left_margin = words
+        .iter()
+        .map(|word| word.x_min)
+        .fold(f64::INFINITY, f64::min);
+    let right_margin = words
+        .iter()
+        .map(|word| word.page_width - word.x_max)
+        .fold(f64::INFINITY, f64::min);
+    println!(
+        "PDF words: {}, median word height {median_height:.2} pt, margins left {left_margin:.1} pt, right {right_margin:.1} pt",
+        words.len()
+    );
+    assert!(
+        median_height >= 10.5,
+        "the PDF's text is small (median word height {median_height:.2} pt): was the page shrunk to fit something too wide?"
+    );
+    assert!(
+        right_margin >= left_margin - 1.0,
+        "words printed in the right margin ({right_margin:.1} pt left of {left_margin:.1})"
+    );
 }
 
 struct WordBox {

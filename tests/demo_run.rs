@@ -8,7 +8,7 @@
 
 mod common;
 
-use common::{cairn, copy_tree, read_json, root, Scratch};
+use common::{Scratch, cairn, copy_tree, read_json, root};
 
 /// A copy of the demo study as committed: the plan, its lock record if any,
 /// and the data (not the audit log or dry-run record a local run may leave).
@@ -53,26 +53,60 @@ fn the_demo_matches_its_golden_outputs() {
 #[test]
 fn the_demo_report_prints_the_hash_of_the_plan_and_a_complete_manifest() {
     let study = demo_copy("demo-hash");
-    assert_eq!(cairn(&study.path, &["run", "plan.yaml", "--out", "out"]).code, 0);
-    let plan_hash = cairn::provenance::sha256_hex(&std::fs::read(root().join("plans/demo/plan.yaml")).expect("plan"));
+    assert_eq!(
+        cairn(&study.path, &["run", "plan.yaml", "--out", "out"]).code,
+        0
+    );
+    let plan_hash = cairn::provenance::sha256_hex(
+        &std::fs::read(root().join("plans/demo/plan.yaml")).expect("plan"),
+    );
     let report = std::fs::read_to_string(study.path.join("out/report.md")).expect("report");
-    assert!(report.contains(&plan_hash), "report.md must print the plan's SHA-256");
+    assert!(
+        report.contains(&plan_hash),
+        "report.md must print the plan's SHA-256"
+    );
     let html = std::fs::read_to_string(study.path.join("out/report.html")).expect("html");
-    assert!(html.contains(&plan_hash), "report.html must print the plan's SHA-256");
+    assert!(
+        html.contains(&plan_hash),
+        "report.html must print the plan's SHA-256"
+    );
     for text in [&report, &html] {
-        assert!(text.contains("do not replace, review by a qualified statistician"), "the caution must be in every report");
+        assert!(
+            text.contains("do not replace, review by a qualified statistician"),
+            "the caution must be in every report"
+        );
     }
     // Self-contained: no scripts, no external resources.
-    for forbidden in ["<script", "http://", "https://", "<link", "@import", "src=\""] {
-        assert!(!html.contains(forbidden), "report.html contains {forbidden}");
+    for forbidden in [
+        "<script", "http://", "https://", "<link", "@import", "src=\"",
+    ] {
+        assert!(
+            !html.contains(forbidden),
+            "report.html contains {forbidden}"
+        );
     }
     let manifest = read_json(&study.path.join("out/manifest.json"));
-    let listed: Vec<&str> = manifest["outputs"].as_array().expect("outputs").iter().filter_map(|entry| entry["file"].as_str()).collect();
-    for file in ["report.md", "report.html", "results.json", "tables/subject-flow.csv", "tables/easi-change-contrasts.csv"] {
+    let listed: Vec<&str> = manifest["outputs"]
+        .as_array()
+        .expect("outputs")
+        .iter()
+        .filter_map(|entry| entry["file"].as_str())
+        .collect();
+    for file in [
+        "report.md",
+        "report.html",
+        "results.json",
+        "tables/subject-flow.csv",
+        "tables/easi-change-contrasts.csv",
+    ] {
         assert!(listed.contains(&file), "manifest lacks {file}");
     }
     let results = read_json(&study.path.join("out/results.json"));
     for analysis in results["analyses"].as_array().expect("analyses") {
-        assert_eq!(analysis["status"], "fitted", "analysis {} did not fit", analysis["id"]);
+        assert_eq!(
+            analysis["status"], "fitted",
+            "analysis {} did not fit",
+            analysis["id"]
+        );
     }
 }

@@ -29,7 +29,10 @@ fn regressions_folder() -> PathBuf {
 }
 
 /// Run `read` on `bytes`, turning a panic into a test failure that names the input.
-fn survives<T>(name: &str, read: impl FnOnce() -> Result<T, cairn::Error> + std::panic::UnwindSafe) -> Result<T, cairn::Error> {
+fn survives<T>(
+    name: &str,
+    read: impl FnOnce() -> Result<T, cairn::Error> + std::panic::UnwindSafe,
+) -> Result<T, cairn::Error> {
     match std::panic::catch_unwind(read) {
         Ok(result) => result,
         Err(_) => panic!("{name}: the reader panicked"),
@@ -38,12 +41,19 @@ fn survives<T>(name: &str, read: impl FnOnce() -> Result<T, cairn::Error> + std:
 
 #[test]
 fn every_stored_input_is_answered_without_a_panic() {
-    let mut entries: Vec<PathBuf> = std::fs::read_dir(regressions_folder()).expect("tests/fuzz/regressions exists").map(|entry| entry.expect("entry").path()).collect();
+    let mut entries: Vec<PathBuf> = std::fs::read_dir(regressions_folder())
+        .expect("tests/fuzz/regressions exists")
+        .map(|entry| entry.expect("entry").path())
+        .collect();
     entries.sort();
     let mut plans = 0;
     let mut tables = 0;
     for path in &entries {
-        let name = path.file_name().and_then(|name| name.to_str()).unwrap_or("?").to_string();
+        let name = path
+            .file_name()
+            .and_then(|name| name.to_str())
+            .unwrap_or("?")
+            .to_string();
         let bytes = std::fs::read(path).expect("read regression input");
         if name.starts_with("plan-") {
             let _ = survives(&name, || cairn::plan::parse(&bytes, "plan.yaml"));
@@ -53,10 +63,17 @@ fn every_stored_input_is_answered_without_a_panic() {
             tables += 1;
         }
     }
-    assert!(plans > 0 && tables > 0, "expected stored inputs for both readers; found {plans} plan and {tables} CSV inputs");
+    assert!(
+        plans > 0 && tables > 0,
+        "expected stored inputs for both readers; found {plans} plan and {tables} CSV inputs"
+    );
 }
 
-fn assert_limit<T: std::fmt::Debug>(name: &str, result: Result<T, cairn::Error>, line: Option<usize>) {
+fn assert_limit<T: std::fmt::Debug>(
+    name: &str,
+    result: Result<T, cairn::Error>,
+    line: Option<usize>,
+) {
     let error = result.expect_err(name);
     assert_eq!(error.kind(), ErrorKind::Limit, "{name}: {error}");
     let location = error.problems[0].location.clone().expect("located");
@@ -69,26 +86,61 @@ fn deep_nesting_is_refused_at_the_limit() {
     // stops building the tree at level 64 (common practice: no recursion or
     // tree deeper than a fixed bound over untrusted input).
     let text = format!("{}{}", "[".repeat(300_000), "]".repeat(300_000));
-    assert_limit("deep lists", survives("deep lists", || cairn::plan::parse(text.as_bytes(), "plan.yaml")), Some(1));
+    assert_limit(
+        "deep lists",
+        survives("deep lists", || {
+            cairn::plan::parse(text.as_bytes(), "plan.yaml")
+        }),
+        Some(1),
+    );
     let text = format!("{}1{}", "{a: ".repeat(200_000), "}".repeat(200_000));
-    assert_limit("deep mappings", survives("deep mappings", || cairn::plan::parse(text.as_bytes(), "plan.yaml")), Some(1));
+    assert_limit(
+        "deep mappings",
+        survives("deep mappings", || {
+            cairn::plan::parse(text.as_bytes(), "plan.yaml")
+        }),
+        Some(1),
+    );
     // Block style, one level per line: the error is on the line of the 65th level.
-    let text: String = (0..1000).map(|depth| format!("{}k{depth}:\n", "  ".repeat(depth))).collect();
-    assert_limit("deep block mappings", survives("deep block mappings", || cairn::plan::parse(text.as_bytes(), "plan.yaml")), Some(65));
+    let text: String = (0..1000)
+        .map(|depth| format!("{}k{depth}:\n", "  ".repeat(depth)))
+        .collect();
+    assert_limit(
+        "deep block mappings",
+        survives("deep block mappings", || {
+            cairn::plan::parse(text.as_bytes(), "plan.yaml")
+        }),
+        Some(65),
+    );
 }
 
 #[test]
 fn a_mapping_with_a_hundred_thousand_keys_is_refused() {
     let text: String = (0..100_000).map(|index| format!("k{index}: 1\n")).collect();
-    assert_limit("many keys", survives("many keys", || cairn::plan::parse(text.as_bytes(), "plan.yaml")), Some(10_001));
+    assert_limit(
+        "many keys",
+        survives("many keys", || {
+            cairn::plan::parse(text.as_bytes(), "plan.yaml")
+        }),
+        Some(10_001),
+    );
 }
 
 #[test]
 fn a_list_with_a_hundred_thousand_entries_is_refused() {
     let items: Vec<String> = (0..100_000).map(|index| format!("L{index}")).collect();
     let text = format!("levels: [{}]\n", items.join(", "));
-    assert!(text.len() <= cairn::plan::limits::MAX_PLAN_BYTES, "the input must reach the entry limit, not the size limit");
-    assert_limit("long list", survives("long list", || cairn::plan::parse(text.as_bytes(), "plan.yaml")), Some(1));
+    assert!(
+        text.len() <= cairn::plan::limits::MAX_PLAN_BYTES,
+        "the input must reach the entry limit, not the size limit"
+    );
+    assert_limit(
+        "long list",
+        survives("long list", || {
+            cairn::plan::parse(text.as_bytes(), "plan.yaml")
+        }),
+        Some(1),
+    );
 }
 
 #[test]
@@ -100,16 +152,34 @@ fn many_long_level_lists_within_the_limits_are_read() {
     let levels: Vec<String> = (0..9_000).map(|index| format!("L{index}")).collect();
     let mut text = String::from("cairn-plan: 1\nvariables:\n");
     for variable in 0..10 {
-        text.push_str(&format!("  V{variable}: {{kind: factor, levels: [{}]}}\n", levels.join(", ")));
+        text.push_str(&format!(
+            "  V{variable}: {{kind: factor, levels: [{}]}}\n",
+            levels.join(", ")
+        ));
     }
-    let error = survives("long level lists", || cairn::plan::parse(text.as_bytes(), "plan.yaml")).expect_err("incomplete plan");
-    assert!(error.problems.iter().all(|problem| problem.kind != ErrorKind::Limit), "{error}");
+    let error = survives("long level lists", || {
+        cairn::plan::parse(text.as_bytes(), "plan.yaml")
+    })
+    .expect_err("incomplete plan");
+    assert!(
+        error
+            .problems
+            .iter()
+            .all(|problem| problem.kind != ErrorKind::Limit),
+        "{error}"
+    );
 }
 
 #[test]
 fn a_plan_over_the_size_limit_is_refused_before_parsing() {
     let text = format!("# {}\n", "x".repeat(cairn::plan::limits::MAX_PLAN_BYTES));
-    assert_limit("large plan", survives("large plan", || cairn::plan::parse(text.as_bytes(), "plan.yaml")), None);
+    assert_limit(
+        "large plan",
+        survives("large plan", || {
+            cairn::plan::parse(text.as_bytes(), "plan.yaml")
+        }),
+        None,
+    );
 }
 
 #[test]
@@ -117,22 +187,45 @@ fn a_header_with_two_hundred_thousand_columns_is_refused() {
     let header: Vec<String> = (0..200_000).map(|index| format!("C{index}")).collect();
     let row = vec!["1"; 200_000];
     let text = format!("{}\n{}\n", header.join(","), row.join(","));
-    assert_limit("wide header", survives("wide header", || cairn::data::read_table(text.as_bytes(), "data.csv")), Some(1));
+    assert_limit(
+        "wide header",
+        survives("wide header", || {
+            cairn::data::read_table(text.as_bytes(), "data.csv")
+        }),
+        Some(1),
+    );
 }
 
 #[test]
 fn a_header_at_the_column_limit_is_read_and_a_late_duplicate_is_found() {
-    let mut header: Vec<String> = (0..cairn::data::MAX_COLUMNS).map(|index| format!("C{index}")).collect();
+    let mut header: Vec<String> = (0..cairn::data::MAX_COLUMNS)
+        .map(|index| format!("C{index}"))
+        .collect();
     let row = vec!["1"; cairn::data::MAX_COLUMNS].join(",");
-    let table = survives("header at the limit", || cairn::data::read_table(format!("{}\n{row}\n", header.join(",")).as_bytes(), "data.csv"))
-        .expect("a header at the limit is read");
+    let table = survives("header at the limit", || {
+        cairn::data::read_table(
+            format!("{}\n{row}\n", header.join(",")).as_bytes(),
+            "data.csv",
+        )
+    })
+    .expect("a header at the limit is read");
     assert_eq!(table.headers.len(), cairn::data::MAX_COLUMNS);
     let last = header.len() - 1;
     header[last] = "C0".to_string();
-    let error = survives("late duplicate", || cairn::data::read_table(format!("{}\n{row}\n", header.join(",")).as_bytes(), "data.csv"))
-        .expect_err("a repeated name is an error");
+    let error = survives("late duplicate", || {
+        cairn::data::read_table(
+            format!("{}\n{row}\n", header.join(",")).as_bytes(),
+            "data.csv",
+        )
+    })
+    .expect_err("a repeated name is an error");
     assert_eq!(error.kind(), ErrorKind::DataFormat);
-    assert!(error.problems[0].message.contains(&format!("columns 1 and {}", cairn::data::MAX_COLUMNS)), "{error}");
+    assert!(
+        error.problems[0]
+            .message
+            .contains(&format!("columns 1 and {}", cairn::data::MAX_COLUMNS)),
+        "{error}"
+    );
 }
 
 /// A small mutation fuzzer that runs with every `cargo test` (the cargo-fuzz
@@ -158,15 +251,20 @@ mod mutations {
         Truncate { at: usize },
     }
 
-    const PIECES: &[&str] = &["[", "]", "{", "}", ":", ": ", "- ", ",", "\n", "\r\n", "\"", "'", "#", "&a ", "*a", "!t ", "---\n", "\t", "|\n", "? ", "\u{FEFF}", "\u{e9}", "\u{0}", "1e999", "~"];
+    const PIECES: &[&str] = &[
+        "[", "]", "{", "}", ":", ": ", "- ", ",", "\n", "\r\n", "\"", "'", "#", "&a ", "*a", "!t ",
+        "---\n", "\t", "|\n", "? ", "\u{FEFF}", "\u{e9}", "\u{0}", "1e999", "~",
+    ];
 
     fn mutation() -> impl Strategy<Value = Mutation> {
         // Positions are fractions of the current length, resolved when applied.
         prop_oneof![
             (any::<usize>(), 0u8..8).prop_map(|(at, bit)| Mutation::Flip { at, bit }),
-            (any::<usize>(), prop::sample::select(PIECES)).prop_map(|(at, text)| Mutation::Insert { at, text }),
+            (any::<usize>(), prop::sample::select(PIECES))
+                .prop_map(|(at, text)| Mutation::Insert { at, text }),
             (any::<usize>(), 1usize..64).prop_map(|(at, length)| Mutation::Delete { at, length }),
-            (any::<usize>(), 1usize..256).prop_map(|(at, length)| Mutation::Duplicate { at, length }),
+            (any::<usize>(), 1usize..256)
+                .prop_map(|(at, length)| Mutation::Duplicate { at, length }),
             any::<usize>().prop_map(|at| Mutation::Truncate { at }),
         ]
     }

@@ -20,7 +20,7 @@
 
 mod common;
 
-use common::{cairn, read_json, Scratch};
+use common::{Scratch, cairn, read_json};
 
 const SCRIPT: &str = "<script>alert(1)</script>";
 const IMAGE: &str = "<img src=x onerror=alert(2)>";
@@ -31,7 +31,9 @@ const MARKER: &str = "<!-- cairn-figure:graph -->";
 
 /// Every probe in one string, tagged so a reader can tell the fields apart.
 fn hostile(tag: &str) -> String {
-    format!("{tag} {SCRIPT} {IMAGE} {BREAKOUT} {LINK} javascript:alert(5) {ENTITY} a|b {MARKER} *em* _u_ `code` #")
+    format!(
+        "{tag} {SCRIPT} {IMAGE} {BREAKOUT} {LINK} javascript:alert(5) {ENTITY} a|b {MARKER} *em* _u_ `code` #"
+    )
 }
 
 /// A YAML single-quoted scalar (the probes hold no single quote).
@@ -42,7 +44,11 @@ fn yaml(text: &str) -> String {
 
 /// A CSV field, quoted when it holds a quote, comma or line break.
 fn csv(text: &str) -> String {
-    if text.contains(['"', ',', '\n']) { format!("\"{}\"", text.replace('"', "\"\"")) } else { text.to_string() }
+    if text.contains(['"', ',', '\n']) {
+        format!("\"{}\"", text.replace('"', "\"\""))
+    } else {
+        text.to_string()
+    }
 }
 
 const HIGH_ARM: &str = "<img src=x onerror=alert(6)>|hi";
@@ -54,7 +60,13 @@ const PLAN_FILE: &str = "plan_<b>`x.yaml";
 /// The five sites: three large ones, and two single-subject ones that the
 /// plan pools. One site name is exactly the report's figure marker.
 fn sites() -> [String; 5] {
-    [SCRIPT.to_string(), BREAKOUT.to_string(), format!("{LINK} a|b {ENTITY}"), MARKER.to_string(), "javascript:alert(7)".to_string()]
+    [
+        SCRIPT.to_string(),
+        BREAKOUT.to_string(),
+        format!("{LINK} a|b {ENTITY}"),
+        MARKER.to_string(),
+        "javascript:alert(7)".to_string(),
+    ]
 }
 
 fn write_study(study: &Scratch) {
@@ -139,7 +151,11 @@ multiplicity:
     // one each. Scores and responses vary within every arm and site, so the
     // linear model and the logistic model are both estimable.
     for subject in 0..20usize {
-        let site = if subject < 18 { subject / 6 } else { subject - 15 };
+        let site = if subject < 18 {
+            subject / 6
+        } else {
+            subject - 15
+        };
         let arm = subject % 3;
         let base = 20.0 + ((subject * 7) % 11) as f64;
         let score = 10.0 + base * 0.3 + [0.0, -2.0, -3.5][arm] + ((subject * 5) % 7) as f64 * 0.7;
@@ -177,10 +193,18 @@ fn scan_tags(html: &str) -> Vec<Tag> {
     while let Some(offset) = html[position..].find('<') {
         let start = position + offset + 1;
         position = start;
-        let Some(&first) = bytes.get(start) else { break };
+        let Some(&first) = bytes.get(start) else {
+            break;
+        };
         if first == b'!' {
-            let end = html[start..].find('>').map_or(html.len(), |end| start + end);
-            tags.push(Tag { name: "!".to_string(), closing: false, attributes: vec![("text".to_string(), html[start + 1..end].to_string())] });
+            let end = html[start..]
+                .find('>')
+                .map_or(html.len(), |end| start + end);
+            tags.push(Tag {
+                name: "!".to_string(),
+                closing: false,
+                attributes: vec![("text".to_string(), html[start + 1..end].to_string())],
+            });
             position = end;
             continue;
         }
@@ -191,20 +215,29 @@ fn scan_tags(html: &str) -> Vec<Tag> {
             continue;
         }
         let name_start = cursor;
-        while cursor < bytes.len() && !bytes[cursor].is_ascii_whitespace() && bytes[cursor] != b'>' && bytes[cursor] != b'/' {
+        while cursor < bytes.len()
+            && !bytes[cursor].is_ascii_whitespace()
+            && bytes[cursor] != b'>'
+            && bytes[cursor] != b'/'
+        {
             cursor += 1;
         }
         let name = html[name_start..cursor].to_ascii_lowercase();
         let mut attributes = Vec::new();
         loop {
-            while cursor < bytes.len() && (bytes[cursor].is_ascii_whitespace() || bytes[cursor] == b'/') {
+            while cursor < bytes.len()
+                && (bytes[cursor].is_ascii_whitespace() || bytes[cursor] == b'/')
+            {
                 cursor += 1;
             }
             if cursor >= bytes.len() || bytes[cursor] == b'>' {
                 break;
             }
             let attribute_start = cursor;
-            while cursor < bytes.len() && !bytes[cursor].is_ascii_whitespace() && !matches!(bytes[cursor], b'=' | b'>' | b'/') {
+            while cursor < bytes.len()
+                && !bytes[cursor].is_ascii_whitespace()
+                && !matches!(bytes[cursor], b'=' | b'>' | b'/')
+            {
                 cursor += 1;
             }
             let attribute = html[attribute_start..cursor].to_ascii_lowercase();
@@ -213,13 +246,18 @@ fn scan_tags(html: &str) -> Vec<Tag> {
                 cursor += 1;
                 match bytes.get(cursor) {
                     Some(&quote) if quote == b'"' || quote == b'\'' => {
-                        let value_end = html[cursor + 1..].find(quote as char).map_or(html.len(), |end| cursor + 1 + end);
+                        let value_end = html[cursor + 1..]
+                            .find(quote as char)
+                            .map_or(html.len(), |end| cursor + 1 + end);
                         value = html[cursor + 1..value_end].to_string();
                         cursor = (value_end + 1).min(html.len());
                     }
                     _ => {
                         let value_start = cursor;
-                        while cursor < bytes.len() && !bytes[cursor].is_ascii_whitespace() && bytes[cursor] != b'>' {
+                        while cursor < bytes.len()
+                            && !bytes[cursor].is_ascii_whitespace()
+                            && bytes[cursor] != b'>'
+                        {
                             cursor += 1;
                         }
                         value = html[value_start..cursor].to_string();
@@ -228,7 +266,11 @@ fn scan_tags(html: &str) -> Vec<Tag> {
             }
             attributes.push((attribute, value));
         }
-        tags.push(Tag { name, closing, attributes });
+        tags.push(Tag {
+            name,
+            closing,
+            attributes,
+        });
         position = cursor.min(html.len());
     }
     tags
@@ -237,18 +279,88 @@ fn scan_tags(html: &str) -> Vec<Tag> {
 /// The elements a cairn report is made of: the page, the Markdown blocks
 /// pulldown-cmark writes, and the SVG elements the figure code draws.
 const ALLOWED_ELEMENTS: [&str; 38] = [
-    "html", "head", "meta", "title", "style", "body", "main", "h1", "h2", "h3", "p", "ul", "li", "blockquote", "strong", "em", "code", "hr",
-    "table", "thead", "tbody", "tr", "th", "td", "figure", "svg", "g", "defs", "marker", "desc", "text", "tspan", "line", "path", "rect",
-    "circle", "polygon", "polyline",
+    "html",
+    "head",
+    "meta",
+    "title",
+    "style",
+    "body",
+    "main",
+    "h1",
+    "h2",
+    "h3",
+    "p",
+    "ul",
+    "li",
+    "blockquote",
+    "strong",
+    "em",
+    "code",
+    "hr",
+    "table",
+    "thead",
+    "tbody",
+    "tr",
+    "th",
+    "td",
+    "figure",
+    "svg",
+    "g",
+    "defs",
+    "marker",
+    "desc",
+    "text",
+    "tspan",
+    "line",
+    "path",
+    "rect",
+    "circle",
+    "polygon",
+    "polyline",
 ];
 
 /// The attributes they carry: presentation only, no URL-valued attribute and
 /// no event handler.
 const ALLOWED_ATTRIBUTES: [&str; 39] = [
-    "lang", "charset", "name", "content", "class", "style", "id", "role", "aria-label", "viewbox", "width", "height", "x", "y", "x1", "y1",
-    "x2", "y2", "cx", "cy", "r", "rx", "d", "fill", "stroke", "stroke-width", "stroke-dasharray", "font-family", "font-size", "font-style",
-    "font-weight", "text-anchor", "marker-end", "orient", "markerwidth", "markerheight",
-    "markerunits", "refx", "refy",
+    "lang",
+    "charset",
+    "name",
+    "content",
+    "class",
+    "style",
+    "id",
+    "role",
+    "aria-label",
+    "viewbox",
+    "width",
+    "height",
+    "x",
+    "y",
+    "x1",
+    "y1",
+    "x2",
+    "y2",
+    "cx",
+    "cy",
+    "r",
+    "rx",
+    "d",
+    "fill",
+    "stroke",
+    "stroke-width",
+    "stroke-dasharray",
+    "font-family",
+    "font-size",
+    "font-style",
+    "font-weight",
+    "text-anchor",
+    "marker-end",
+    "orient",
+    "markerwidth",
+    "markerheight",
+    "markerunits",
+    "refx",
+    "refy",
 ];
 
 /// Cells of one Markdown table row: split on every `|` not escaped by a
@@ -280,11 +392,20 @@ fn run_hostile_study() -> Run {
     let study = Scratch::new("html-safety");
     write_study(&study);
     let outcome = cairn(&study.path, &["run", PLAN_FILE, "--out", "out"]);
-    assert_eq!(outcome.code, 0, "the hostile study must run; stderr:\n{}", outcome.stderr);
+    assert_eq!(
+        outcome.code, 0,
+        "the hostile study must run; stderr:\n{}",
+        outcome.stderr
+    );
     let html = std::fs::read_to_string(study.path.join("out/report.html")).expect("report.html");
     let markdown = std::fs::read_to_string(study.path.join("out/report.md")).expect("report.md");
     let results = read_json(&study.path.join("out/results.json"));
-    Run { _study: study, html, markdown, results }
+    Run {
+        _study: study,
+        html,
+        markdown,
+        results,
+    }
 }
 
 #[test]
@@ -296,75 +417,221 @@ fn hostile_text_never_becomes_markup_in_the_html_report() {
     let analyses = run.results["analyses"].as_array().expect("analyses");
     assert_eq!(analyses.len(), 2);
     for analysis in analyses {
-        assert_eq!(analysis["status"], "fitted", "analysis {} must fit: {}", analysis["id"], analysis["failure"]);
+        assert_eq!(
+            analysis["status"], "fitted",
+            "analysis {} must fit: {}",
+            analysis["id"], analysis["failure"]
+        );
     }
-    assert!(run.results["study"]["title"].as_str().is_some_and(|title| title.contains(SCRIPT)));
-    let coefficient_names: Vec<&str> = analyses[0]["coefficients"].as_array().expect("coefficients").iter().filter_map(|row| row["name"].as_str()).collect();
-    assert!(coefficient_names.contains(&format!("SITE = {SCRIPT}").as_str()), "a site name from the data must reach the coefficients: {coefficient_names:?}");
-    assert_eq!(run.results["multiplicity"]["hypotheses"][0]["contrast"], format!("{HIGH_ARM}-vs-placebo"));
+    assert!(
+        run.results["study"]["title"]
+            .as_str()
+            .is_some_and(|title| title.contains(SCRIPT))
+    );
+    let coefficient_names: Vec<&str> = analyses[0]["coefficients"]
+        .as_array()
+        .expect("coefficients")
+        .iter()
+        .filter_map(|row| row["name"].as_str())
+        .collect();
+    assert!(
+        coefficient_names.contains(&format!("SITE = {SCRIPT}").as_str()),
+        "a site name from the data must reach the coefficients: {coefficient_names:?}"
+    );
+    assert_eq!(
+        run.results["multiplicity"]["hypotheses"][0]["contrast"],
+        format!("{HIGH_ARM}-vs-placebo")
+    );
 
-    for forbidden in ["<script", "<img", "<a ", "<a>", "<iframe", "<object", "<embed", "<link", "<base", "<form", "javascript:alert(4)\""] {
-        assert!(!html.contains(forbidden), "report.html contains {forbidden:?}");
+    for forbidden in [
+        "<script",
+        "<img",
+        "<a ",
+        "<a>",
+        "<iframe",
+        "<object",
+        "<embed",
+        "<link",
+        "<base",
+        "<form",
+        "javascript:alert(4)\"",
+    ] {
+        assert!(
+            !html.contains(forbidden),
+            "report.html contains {forbidden:?}"
+        );
     }
     // "onerror=" and "onload=" do occur, as escaped text; the tag scan below
     // shows that no element carries them as attributes.
     let tags = scan_tags(html);
-    assert!(tags.len() > 100, "the tag scanner found only {} tags", tags.len());
+    assert!(
+        tags.len() > 100,
+        "the tag scanner found only {} tags",
+        tags.len()
+    );
     for tag in &tags {
         if tag.name == "!" {
             let text = &tag.attributes[0].1;
-            assert!(text.eq_ignore_ascii_case("DOCTYPE html"), "unexpected comment or declaration <!{text}> (a forged figure marker?)");
+            assert!(
+                text.eq_ignore_ascii_case("DOCTYPE html"),
+                "unexpected comment or declaration <!{text}> (a forged figure marker?)"
+            );
             continue;
         }
-        assert!(ALLOWED_ELEMENTS.contains(&tag.name.as_str()), "element <{}> is not one a report is made of: {tag:?}", tag.name);
+        assert!(
+            ALLOWED_ELEMENTS.contains(&tag.name.as_str()),
+            "element <{}> is not one a report is made of: {tag:?}",
+            tag.name
+        );
         for (attribute, value) in &tag.attributes {
-            assert!(ALLOWED_ATTRIBUTES.contains(&attribute.as_str()), "attribute {attribute}={value:?} on <{}> is not allowed", tag.name);
-            assert!(!attribute.starts_with("on"), "event handler {attribute} on <{}>", tag.name);
+            assert!(
+                ALLOWED_ATTRIBUTES.contains(&attribute.as_str()),
+                "attribute {attribute}={value:?} on <{}> is not allowed",
+                tag.name
+            );
+            assert!(
+                !attribute.starts_with("on"),
+                "event handler {attribute} on <{}>",
+                tag.name
+            );
             // aria-label is text read aloud (it repeats a figure's title, probes
             // included); every other allowed attribute could carry a URL
             // (style and marker-end through url(...)) and must not hold one.
             if attribute != "aria-label" {
-                assert!(!value.to_ascii_lowercase().contains("javascript:"), "javascript: in {attribute} of <{}>", tag.name);
-                assert!(!value.contains("url(") || value.starts_with("url(#"), "a non-local url in {attribute} of <{}>: {value}", tag.name);
+                assert!(
+                    !value.to_ascii_lowercase().contains("javascript:"),
+                    "javascript: in {attribute} of <{}>",
+                    tag.name
+                );
+                assert!(
+                    !value.contains("url(") || value.starts_with("url(#"),
+                    "a non-local url in {attribute} of <{}>: {value}",
+                    tag.name
+                );
             }
         }
         if tag.name == "style" && !tag.closing {
-            assert!(tag.attributes.is_empty(), "the style element takes no attributes");
+            assert!(
+                tag.attributes.is_empty(),
+                "the style element takes no attributes"
+            );
         }
     }
     // Forest plots for the two analyses and the multiplicity graph, each once.
-    let svg_count = tags.iter().filter(|tag| tag.name == "svg" && !tag.closing).count();
+    let svg_count = tags
+        .iter()
+        .filter(|tag| tag.name == "svg" && !tag.closing)
+        .count();
     assert_eq!(svg_count, 3, "expected 3 figures (2 forest plots, 1 graph)");
     assert_eq!(html.matches("<svg").count(), 3);
-    assert_eq!(tags.iter().filter(|tag| tag.name == "style" && !tag.closing).count(), 1, "only the page's own style element");
-    assert_eq!(tags.iter().filter(|tag| tag.name == "title" && !tag.closing).count(), tags.iter().filter(|tag| tag.name == "title" && tag.closing).count());
+    assert_eq!(
+        tags.iter()
+            .filter(|tag| tag.name == "style" && !tag.closing)
+            .count(),
+        1,
+        "only the page's own style element"
+    );
+    assert_eq!(
+        tags.iter()
+            .filter(|tag| tag.name == "title" && !tag.closing)
+            .count(),
+        tags.iter()
+            .filter(|tag| tag.name == "title" && tag.closing)
+            .count()
+    );
 
     // The probes are shown as text, escaped once: "<" as "&lt;", the literal
     // entity "&lt;" as "&amp;lt;", and no backslash of the Markdown escaping
     // left over in ordinary text or in code.
-    for tag in ["study-title", "placebo-label", "low-label", "site-label", "base-label", "score-label", "score-title", "response-title", "pooled-into", "h1-label"] {
-        let shown = format!("{tag} &lt;script&gt;alert(1)&lt;/script&gt; &lt;img src=x onerror=alert(2)&gt; \"&gt;&lt;svg onload=alert(3)&gt; [x](javascript:alert(4)) javascript:alert(5) &amp;lt;b&amp;gt; a|b &lt;!-- cairn-figure:graph --&gt; *em* _u_ `code` #");
-        assert!(html.contains(&shown), "{tag}: the probe must be shown as written, escaped; looked for {shown:?}");
+    for tag in [
+        "study-title",
+        "placebo-label",
+        "low-label",
+        "site-label",
+        "base-label",
+        "score-label",
+        "score-title",
+        "response-title",
+        "pooled-into",
+        "h1-label",
+    ] {
+        let shown = format!(
+            "{tag} &lt;script&gt;alert(1)&lt;/script&gt; &lt;img src=x onerror=alert(2)&gt; \"&gt;&lt;svg onload=alert(3)&gt; [x](javascript:alert(4)) javascript:alert(5) &amp;lt;b&amp;gt; a|b &lt;!-- cairn-figure:graph --&gt; *em* _u_ `code` #"
+        );
+        assert!(
+            html.contains(&shown),
+            "{tag}: the probe must be shown as written, escaped; looked for {shown:?}"
+        );
     }
-    assert!(html.contains("<h2>3. score-title &lt;script&gt;"), "the analysis title is the heading's text");
-    assert!(html.contains("&lt;!-- cairn-figure:forest-1 --&gt; [x](javascript:alert(4))"), "a forged forest marker in a hypothesis label shows as text");
-    assert!(html.contains("<td style=\"text-align: left\">&lt;!-- cairn-figure:graph --&gt;</td>"), "a population label equal to a figure marker shows as text");
-    assert!(html.contains("&lt;img src=x onerror=alert(6)&gt;|hi"), "an arm code without a label shows as text");
-    assert!(html.contains("subjects &lt;b&gt;|x.csv"), "a data file's name shows as text");
-    assert!(html.contains("<code>score_change</code>"), "an analysis id shows as written in code");
-    assert!(html.contains("from plan <code>plan_&lt;b&gt;`x.yaml</code>."), "the plan's file name shows as written in code");
-    assert!(html.contains("Run <code>cairn run plan_&lt;b&gt;`x.yaml --out DIR</code> with"), "the rerun command shows as written in code");
-    assert!(!html.contains("\\&lt;") && !html.contains("\\|") && !html.contains("\\[") && !html.contains("\\_"), "a Markdown escape must not show in the HTML");
+    assert!(
+        html.contains("<h2>3. score-title &lt;script&gt;"),
+        "the analysis title is the heading's text"
+    );
+    assert!(
+        html.contains("&lt;!-- cairn-figure:forest-1 --&gt; [x](javascript:alert(4))"),
+        "a forged forest marker in a hypothesis label shows as text"
+    );
+    assert!(
+        html.contains("<td style=\"text-align: left\">&lt;!-- cairn-figure:graph --&gt;</td>"),
+        "a population label equal to a figure marker shows as text"
+    );
+    assert!(
+        html.contains("&lt;img src=x onerror=alert(6)&gt;|hi"),
+        "an arm code without a label shows as text"
+    );
+    assert!(
+        html.contains("subjects &lt;b&gt;|x.csv"),
+        "a data file's name shows as text"
+    );
+    assert!(
+        html.contains("<code>score_change</code>"),
+        "an analysis id shows as written in code"
+    );
+    assert!(
+        html.contains("from plan <code>plan_&lt;b&gt;`x.yaml</code>."),
+        "the plan's file name shows as written in code"
+    );
+    assert!(
+        html.contains("Run <code>cairn run plan_&lt;b&gt;`x.yaml --out DIR</code> with"),
+        "the rerun command shows as written in code"
+    );
+    assert!(
+        !html.contains("\\&lt;")
+            && !html.contains("\\|")
+            && !html.contains("\\[")
+            && !html.contains("\\_"),
+        "a Markdown escape must not show in the HTML"
+    );
 
     // The page title: the study id and title, escaped, nothing else inside.
     let title_start = html.find("<title>").expect("a title element") + "<title>".len();
-    let title_end = title_start + html[title_start..].find("</title>").expect("the title's end");
+    let title_end = title_start
+        + html[title_start..]
+            .find("</title>")
+            .expect("the title's end");
     let title = &html[title_start..title_end];
-    assert!(!title.contains('<') && !title.contains('>'), "the title element must hold text only: {title:?}");
-    let decoded = title.replace("&lt;", "<").replace("&gt;", ">").replace("&quot;", "\"").replace("&#x2f;", "/").replace("&#x27;", "'").replace("&#39;", "'").replace("&amp;", "&");
+    assert!(
+        !title.contains('<') && !title.contains('>'),
+        "the title element must hold text only: {title:?}"
+    );
+    let decoded = title
+        .replace("&lt;", "<")
+        .replace("&gt;", ">")
+        .replace("&quot;", "\"")
+        .replace("&#x2f;", "/")
+        .replace("&#x27;", "'")
+        .replace("&#39;", "'")
+        .replace("&amp;", "&");
     let study_id = format!("ID{SCRIPT}|{MARKER}");
-    assert_eq!(decoded, format!("{study_id} — {}", hostile("study-title")), "the title must read as the study id and title, exactly");
-    assert!(title.contains("&amp;lt;b&amp;gt;"), "the literal entity in the title must stay literal: {title:?}");
+    assert_eq!(
+        decoded,
+        format!("{study_id} — {}", hostile("study-title")),
+        "the title must read as the study id and title, exactly"
+    );
+    assert!(
+        title.contains("&amp;lt;b&amp;gt;"),
+        "the literal entity in the title must stay literal: {title:?}"
+    );
 }
 
 #[test]
@@ -382,11 +649,20 @@ fn hostile_text_keeps_the_markdown_tables_whole() {
         }
         let header = lines[index];
         let columns = cell_count(header);
-        assert!(columns >= 2, "table header with fewer than two cells: {header}");
+        assert!(
+            columns >= 2,
+            "table header with fewer than two cells: {header}"
+        );
         tables += 1;
         let mut row = index + 1;
         while row < lines.len() && lines[row].starts_with('|') {
-            assert_eq!(cell_count(lines[row]), columns, "row {} of the table headed {header:?} has the wrong number of cells:\n{}", row - index, lines[row]);
+            assert_eq!(
+                cell_count(lines[row]),
+                columns,
+                "row {} of the table headed {header:?} has the wrong number of cells:\n{}",
+                row - index,
+                lines[row]
+            );
             rows_checked += 1;
             row += 1;
         }
@@ -397,25 +673,55 @@ fn hostile_text_keeps_the_markdown_tables_whole() {
     assert!(tables >= 10, "only {tables} tables found");
     assert!(rows_checked >= 40, "only {rows_checked} rows checked");
     // The hostile rows are among them.
-    for needle in ["| \\<!-- cairn-figure:graph --\\> |", "| SITE = \\<script\\>alert(1)\\</script\\> |", "h1-label", "subjects \\<b\\>\\|x.csv"] {
-        assert!(lines.iter().any(|line| line.starts_with('|') && line.contains(needle)), "no table row holds {needle:?}");
+    for needle in [
+        "| \\<!-- cairn-figure:graph --\\> |",
+        "| SITE = \\<script\\>alert(1)\\</script\\> |",
+        "h1-label",
+        "subjects \\<b\\>\\|x.csv",
+    ] {
+        assert!(
+            lines
+                .iter()
+                .any(|line| line.starts_with('|') && line.contains(needle)),
+            "no table row holds {needle:?}"
+        );
     }
     // No line of the Markdown is raw HTML except the template's own figure
     // markers, one per figure.
-    let markers: Vec<&&str> = lines.iter().filter(|line| line.starts_with("<!--")).collect();
+    let markers: Vec<&&str> = lines
+        .iter()
+        .filter(|line| line.starts_with("<!--"))
+        .collect();
     assert_eq!(markers.len(), 3, "figure markers: {markers:?}");
-    assert!(!markdown.contains(SCRIPT) && !markdown.contains(IMAGE), "an unescaped probe in report.md");
+    assert!(
+        !markdown.contains(SCRIPT) && !markdown.contains(IMAGE),
+        "an unescaped probe in report.md"
+    );
 }
 
 /// The scanner itself sees what a browser would: without this, the allow-list
 /// checks above could pass on a scanner that finds nothing.
 #[test]
 fn the_tag_scanner_finds_live_markup() {
-    let tags = scan_tags("<p>a &lt;b&gt; c</p><IMG SRC=x onerror=alert(2)><svg/onload='alert(3)'><!-- cairn-figure:graph --><a href=\"javascript:x\">");
+    let tags = scan_tags(
+        "<p>a &lt;b&gt; c</p><IMG SRC=x onerror=alert(2)><svg/onload='alert(3)'><!-- cairn-figure:graph --><a href=\"javascript:x\">",
+    );
     let names: Vec<&str> = tags.iter().map(|tag| tag.name.as_str()).collect();
     assert_eq!(names, ["p", "p", "img", "svg", "!", "a"]);
-    assert_eq!(tags[2].attributes, [("src".to_string(), "x".to_string()), ("onerror".to_string(), "alert(2)".to_string())]);
-    assert_eq!(tags[3].attributes, [("onload".to_string(), "alert(3)".to_string())]);
-    assert_eq!(tags[5].attributes, [("href".to_string(), "javascript:x".to_string())]);
+    assert_eq!(
+        tags[2].attributes,
+        [
+            ("src".to_string(), "x".to_string()),
+            ("onerror".to_string(), "alert(2)".to_string())
+        ]
+    );
+    assert_eq!(
+        tags[3].attributes,
+        [("onload".to_string(), "alert(3)".to_string())]
+    );
+    assert_eq!(
+        tags[5].attributes,
+        [("href".to_string(), "javascript:x".to_string())]
+    );
     assert_eq!(cell_count("| a \\| b | `c` | d |"), 3);
 }

@@ -115,18 +115,46 @@ fn simulate(seed: u64, n_subjects: usize) -> Vec<Subject> {
             // and the fit would rightly fail); everything else is random.
             let arm = index % 3;
             let fixed = index < 36;
-            let site = if fixed { SITES[(index / 12) % 3] } else { SITES[draws.below(3)] };
+            let site = if fixed {
+                SITES[(index / 12) % 3]
+            } else {
+                SITES[draws.below(3)]
+            };
             let x = 50.0 + 10.0 * draws.normal();
             let centred = (x - 50.0) / 10.0;
             let effect = [0.0, 0.4, 0.8][arm];
             let y = 10.0 + 2.0 * effect + 1.5 * centred + 2.0 * draws.normal();
             let risk = 1.0 / (1.0 + (-(-0.3 + effect + 0.5 * centred)).exp());
-            let binary = if fixed { ["yes", "no"][(index / 3) % 2] } else if draws.uniform() < risk { "yes" } else { "no" };
+            let binary = if fixed {
+                ["yes", "no"][(index / 3) % 2]
+            } else if draws.uniform() < risk {
+                "yes"
+            } else {
+                "no"
+            };
             let count = poisson(&mut draws, (0.8 + 0.5 * effect + 0.2 * centred).exp());
             let latent = effect + 0.6 * centred + logistic_noise(&mut draws);
-            let ordinal = if fixed { ORDINAL[(index / 3) % 4] } else { ORDINAL[[-0.8, 0.3, 1.3].iter().filter(|cut| latent > **cut).count()] };
-            let nominal = if fixed { NOMINAL[(index / 3) % 3] } else { NOMINAL[draws.below(3)] };
-            Subject { id: format!("S{index:04}"), arm, site, x, y, binary, count, ordinal, nominal }
+            let ordinal = if fixed {
+                ORDINAL[(index / 3) % 4]
+            } else {
+                ORDINAL[[-0.8, 0.3, 1.3].iter().filter(|cut| latent > **cut).count()]
+            };
+            let nominal = if fixed {
+                NOMINAL[(index / 3) % 3]
+            } else {
+                NOMINAL[draws.below(3)]
+            };
+            Subject {
+                id: format!("S{index:04}"),
+                arm,
+                site,
+                x,
+                y,
+                binary,
+                count,
+                ordinal,
+                nominal,
+            }
         })
         .collect()
 }
@@ -149,21 +177,37 @@ struct Arms {
 impl Arms {
     fn original() -> Arms {
         let codes: Vec<String> = ARMS.iter().map(|code| code.to_string()).collect();
-        Arms { plan_order: codes.clone(), reference: codes[0].clone(), code_of: codes }
+        Arms {
+            plan_order: codes.clone(),
+            reference: codes[0].clone(),
+            code_of: codes,
+        }
     }
 }
 
 /// Write the study into `scratch` and return the results of a run as JSON.
-fn run_study(scratch: &Scratch, subjects: &[Subject], arms: &Arms, subject_order: &[usize], allocation_order: &[usize]) -> Value {
+fn run_study(
+    scratch: &Scratch,
+    subjects: &[Subject],
+    arms: &Arms,
+    subject_order: &[usize],
+    allocation_order: &[usize],
+) -> Value {
     let mut subjects_csv = String::from("USUBJID,FASFL,SITE,X,Y,B,C,O,N\n");
     for &index in subject_order {
         let s = &subjects[index];
         // `{}` writes the shortest text that reads back as the same double.
-        subjects_csv.push_str(&format!("{},Y,{},{},{},{},{},{},{}\n", s.id, s.site, s.x, s.y, s.binary, s.count, s.ordinal, s.nominal));
+        subjects_csv.push_str(&format!(
+            "{},Y,{},{},{},{},{},{},{}\n",
+            s.id, s.site, s.x, s.y, s.binary, s.count, s.ordinal, s.nominal
+        ));
     }
     let mut allocation_csv = String::from("USUBJID,ARM\n");
     for &index in allocation_order {
-        allocation_csv.push_str(&format!("{},{}\n", subjects[index].id, arms.code_of[subjects[index].arm]));
+        allocation_csv.push_str(&format!(
+            "{},{}\n",
+            subjects[index].id, arms.code_of[subjects[index].arm]
+        ));
     }
     scratch.write("data/subjects.csv", subjects_csv);
     scratch.write("data/allocation.csv", allocation_csv);
@@ -175,7 +219,9 @@ fn run_study(scratch: &Scratch, subjects: &[Subject], arms: &Arms, subject_order
         "    contrasts:\n      - {{id: low-vs-placebo, arm: {low}, versus: {placebo}}}\n      - {{id: high-vs-placebo, arm: {high}, versus: {placebo}}}\n      - {{id: high-vs-low, arm: {high}, versus: {low}}}\n"
     );
     let analysis = |id: &str, endpoint: &str, model: &str| {
-        format!("  - id: {id}\n    endpoint: {endpoint}\n    population: fas\n    model: {model}\n    covariates: [X]\n    strata: [SITE]\n{contrasts}")
+        format!(
+            "  - id: {id}\n    endpoint: {endpoint}\n    population: fas\n    model: {model}\n    covariates: [X]\n    strata: [SITE]\n{contrasts}"
+        )
     };
     let plan = format!(
         "cairn-plan: 1
@@ -197,23 +243,58 @@ populations:
   fas: {{flag: FASFL, equals: Y}}
 analyses:
 {linear}{binomial}{poisson}{cumulative}{multinomial}",
-        levels = arms.plan_order.iter().map(|code| format!("\"{code}\"")).collect::<Vec<_>>().join(", "),
+        levels = arms
+            .plan_order
+            .iter()
+            .map(|code| format!("\"{code}\""))
+            .collect::<Vec<_>>()
+            .join(", "),
         reference = format!("\"{}\"", arms.reference),
         ordinal = ORDINAL.join(", "),
         nominal = NOMINAL.join(", "),
-        linear = analysis("linear", "{column: Y, kind: continuous, higher-is: better}", "{family: linear}"),
-        binomial = analysis("binomial", "{column: B, kind: binary, event: yes, higher-is: better}", "{family: binomial, link: logit}"),
-        poisson = analysis("poisson", "{column: C, kind: count, higher-is: worse}", "{family: poisson}"),
-        cumulative = analysis("cumulative", "{column: O, kind: ordinal, higher-is: worse}", "{family: cumulative, link: logit}"),
-        multinomial = analysis("multinomial", "{column: N, kind: nominal}", "{family: multinomial, reference-category: red}"),
+        linear = analysis(
+            "linear",
+            "{column: Y, kind: continuous, higher-is: better}",
+            "{family: linear}"
+        ),
+        binomial = analysis(
+            "binomial",
+            "{column: B, kind: binary, event: yes, higher-is: better}",
+            "{family: binomial, link: logit}"
+        ),
+        poisson = analysis(
+            "poisson",
+            "{column: C, kind: count, higher-is: worse}",
+            "{family: poisson}"
+        ),
+        cumulative = analysis(
+            "cumulative",
+            "{column: O, kind: ordinal, higher-is: worse}",
+            "{family: cumulative, link: logit}"
+        ),
+        multinomial = analysis(
+            "multinomial",
+            "{column: N, kind: nominal}",
+            "{family: multinomial, reference-category: red}"
+        ),
     );
     let plan_path = scratch.write("plan.yaml", plan);
-    let inputs = cairn::run::load_inputs(&plan_path, cairn::run::Mode::Unblinded).unwrap_or_else(|error| panic!("the study should load: {error}"));
-    let staged = cairn::run::produce(&inputs, &cairn::run::RunOptions::default()).unwrap_or_else(|error| panic!("the study should run: {error}"));
-    let (_, bytes) = staged.files().iter().find(|(name, _)| name == "results.json").expect("results.json is produced");
+    let inputs = cairn::run::load_inputs(&plan_path, cairn::run::Mode::Unblinded)
+        .unwrap_or_else(|error| panic!("the study should load: {error}"));
+    let staged = cairn::run::produce(&inputs, &cairn::run::RunOptions::default())
+        .unwrap_or_else(|error| panic!("the study should run: {error}"));
+    let (_, bytes) = staged
+        .files()
+        .iter()
+        .find(|(name, _)| name == "results.json")
+        .expect("results.json is produced");
     let results: Value = serde_json::from_slice(bytes).expect("results.json parses");
     for analysis in results["analyses"].as_array().expect("analyses") {
-        assert_eq!(analysis["status"], "fitted", "every analysis of the synthetic study should fit: {} {}", analysis["id"], analysis["failure"]);
+        assert_eq!(
+            analysis["status"], "fitted",
+            "every analysis of the synthetic study should fit: {} {}",
+            analysis["id"], analysis["failure"]
+        );
     }
     results
 }
@@ -237,11 +318,17 @@ fn permutation(n: usize, seed: u64) -> Vec<usize> {
 fn compare(actual: &Value, expected: &Value, path: &str, differences: &mut Vec<String>) {
     match (actual, expected) {
         (Value::Number(a), Value::Number(b)) => {
-            let (a, b) = (a.as_f64().unwrap_or(f64::NAN), b.as_f64().unwrap_or(f64::NAN));
+            let (a, b) = (
+                a.as_f64().unwrap_or(f64::NAN),
+                b.as_f64().unwrap_or(f64::NAN),
+            );
             let scale = a.abs().max(b.abs()).max(FLOOR);
             // Written negated so that a NaN (which compares false) counts as a difference.
             if !((a - b).abs() <= TOLERANCE * scale) {
-                differences.push(format!("{path}: {a:e} vs expected {b:e} (relative difference {:.2e})", (a - b).abs() / scale));
+                differences.push(format!(
+                    "{path}: {a:e} vs expected {b:e} (relative difference {:.2e})",
+                    (a - b).abs() / scale
+                ));
             }
         }
         (Value::Array(a), Value::Array(b)) if a.len() == b.len() => {
@@ -268,13 +355,21 @@ fn compare(actual: &Value, expected: &Value, path: &str, differences: &mut Vec<S
 fn largest_difference(actual: &Value, expected: &Value) -> f64 {
     match (actual, expected) {
         (Value::Number(a), Value::Number(b)) => {
-            let (a, b) = (a.as_f64().unwrap_or(f64::NAN), b.as_f64().unwrap_or(f64::NAN));
+            let (a, b) = (
+                a.as_f64().unwrap_or(f64::NAN),
+                b.as_f64().unwrap_or(f64::NAN),
+            );
             (a - b).abs() / a.abs().max(b.abs()).max(FLOOR)
         }
-        (Value::Array(a), Value::Array(b)) => a.iter().zip(b).map(|(x, y)| largest_difference(x, y)).fold(0.0, f64::max),
-        (Value::Object(a), Value::Object(b)) => {
-            b.iter().filter_map(|(key, y)| a.get(key).map(|x| largest_difference(x, y))).fold(0.0, f64::max)
-        }
+        (Value::Array(a), Value::Array(b)) => a
+            .iter()
+            .zip(b)
+            .map(|(x, y)| largest_difference(x, y))
+            .fold(0.0, f64::max),
+        (Value::Object(a), Value::Object(b)) => b
+            .iter()
+            .filter_map(|(key, y)| a.get(key).map(|x| largest_difference(x, y)))
+            .fold(0.0, f64::max),
         _ => 0.0,
     }
 }
@@ -283,8 +378,15 @@ fn assert_same(actual: &Value, expected: &Value, what: &str) {
     let mut differences = Vec::new();
     compare(actual, expected, "", &mut differences);
     let shown: Vec<&String> = differences.iter().take(20).collect();
-    assert!(differences.is_empty(), "{what}: {} differences, first ones:\n{shown:#?}", differences.len());
-    eprintln!("{what}: largest relative difference {:.2e}", largest_difference(actual, expected));
+    assert!(
+        differences.is_empty(),
+        "{what}: {} differences, first ones:\n{shown:#?}",
+        differences.len()
+    );
+    eprintln!(
+        "{what}: largest relative difference {:.2e}",
+        largest_difference(actual, expected)
+    );
 }
 
 /// The parts of results.json that must not depend on how the data files are
@@ -310,7 +412,9 @@ fn without_inputs(results: &Value) -> Value {
 }
 
 fn estimate_fields(estimate: &mut Value, transform: impl Fn(&str, f64) -> Option<f64>) {
-    let Some(object) = estimate.as_object_mut() else { return };
+    let Some(object) = estimate.as_object_mut() else {
+        return;
+    };
     for (key, value) in object.iter_mut() {
         if let Some(number) = value.as_f64() {
             if let Some(changed) = transform(key, number) {

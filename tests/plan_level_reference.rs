@@ -19,7 +19,7 @@
 
 mod common;
 
-use common::{cairn, read_json, relative_error, root, Scratch};
+use common::{Scratch, cairn, read_json, relative_error, root};
 use serde_json::Value;
 
 /// Relative tolerance asked for the plan-level checks: every reference value
@@ -28,14 +28,19 @@ use serde_json::Value;
 const TOLERANCE: f64 = 1e-6;
 
 fn number(value: &Value, what: &str) -> f64 {
-    value.as_f64().unwrap_or_else(|| panic!("{what}: not a number: {value}"))
+    value
+        .as_f64()
+        .unwrap_or_else(|| panic!("{what}: not a number: {value}"))
 }
 
 /// Compare one number from results.json with R's, naming the source in the message.
 fn close(actual: &Value, expected: &Value, source: &str, what: &str) -> f64 {
     let (actual, expected) = (actual.as_f64().unwrap_or(f64::NAN), number(expected, what));
     let error = relative_error(actual, expected);
-    assert!(error <= TOLERANCE, "{source}: {what}: cairn {actual:e}, R {expected:e}, relative error {error:e}");
+    assert!(
+        error <= TOLERANCE,
+        "{source}: {what}: cairn {actual:e}, R {expected:e}, relative error {error:e}"
+    );
     error
 }
 
@@ -43,8 +48,12 @@ fn close(actual: &Value, expected: &Value, source: &str, what: &str) -> f64 {
 fn run(study: &str, plan: &str) -> Value {
     let scratch = Scratch::new(study);
     let folder = root().join("tests/reference/plan_level");
-    for (file, target) in [("subjects", "data/subjects.csv"), ("allocation", "data/allocation.csv")] {
-        let text = std::fs::read(folder.join(format!("{study}_{file}.csv"))).expect("reference study file");
+    for (file, target) in [
+        ("subjects", "data/subjects.csv"),
+        ("allocation", "data/allocation.csv"),
+    ] {
+        let text = std::fs::read(folder.join(format!("{study}_{file}.csv")))
+            .expect("reference study file");
         scratch.write(target, text);
     }
     scratch.write("plan.yaml", plan);
@@ -54,7 +63,11 @@ fn run(study: &str, plan: &str) -> Value {
     let analyses = results["analyses"].as_array().expect("analyses");
     assert_eq!(analyses.len(), 1);
     let analysis = analyses[0].clone();
-    assert_eq!(analysis["status"], "fitted", "failure: {}", analysis["failure"]);
+    assert_eq!(
+        analysis["status"], "fitted",
+        "failure: {}",
+        analysis["failure"]
+    );
     analysis
 }
 
@@ -63,53 +76,144 @@ fn run(study: &str, plan: &str) -> Value {
 /// largest relative error seen.
 fn check_common(analysis: &Value, reference: &Value, source: &str) -> f64 {
     let mut worst: f64 = 0.0;
-    assert_eq!(analysis["fit"]["n_analysed"], reference["n_analysed"], "{source}: analysed subjects");
+    assert_eq!(
+        analysis["fit"]["n_analysed"], reference["n_analysed"],
+        "{source}: analysed subjects"
+    );
 
     // Coefficients in cairn's design order, which R's formula reproduces term by term.
     let ours = analysis["coefficients"].as_array().expect("coefficients");
-    let theirs = reference["coefficients"].as_array().expect("reference coefficients");
+    let theirs = reference["coefficients"]
+        .as_array()
+        .expect("reference coefficients");
     assert_eq!(ours.len(), theirs.len(), "{source}: number of parameters");
     for (ours, theirs) in ours.iter().zip(theirs) {
         let name = theirs["cairn_name"].as_str().expect("name");
-        assert_eq!(ours["name"], theirs["cairn_name"], "{source}: parameter order (R's {})", theirs["r_name"]);
+        assert_eq!(
+            ours["name"], theirs["cairn_name"],
+            "{source}: parameter order (R's {})",
+            theirs["r_name"]
+        );
         if let Some(category) = theirs.get("category") {
             assert_eq!(&ours["category"], category, "{source}: category of {name}");
         }
         let label = format!("{name} [{}]", theirs["r_name"].as_str().unwrap_or("?"));
-        worst = worst.max(close(&ours["estimate"]["estimate"], &theirs["estimate"], source, &format!("estimate of {label}")));
-        worst = worst.max(close(&ours["estimate"]["standard_error"], &theirs["std_error"], source, &format!("SE of {label}")));
+        worst = worst.max(close(
+            &ours["estimate"]["estimate"],
+            &theirs["estimate"],
+            source,
+            &format!("estimate of {label}"),
+        ));
+        worst = worst.max(close(
+            &ours["estimate"]["standard_error"],
+            &theirs["std_error"],
+            source,
+            &format!("SE of {label}"),
+        ));
     }
 
     // Contrasts, found by arm, versus and category; the count must match the plan's.
     let ours = analysis["contrasts"].as_array().expect("contrasts");
-    let theirs = reference["contrasts"].as_array().expect("reference contrasts");
+    let theirs = reference["contrasts"]
+        .as_array()
+        .expect("reference contrasts");
     assert_eq!(ours.len(), theirs.len(), "{source}: number of contrasts");
     for expected in theirs {
         let found = ours
             .iter()
-            .find(|c| c["arm"] == expected["arm"] && c["versus"] == expected["versus"] && c["category"] == expected["category"])
-            .unwrap_or_else(|| panic!("{source}: no contrast {} vs {} ({})", expected["arm"], expected["versus"], expected["category"]));
-        assert!(found["failure"].is_null(), "{source}: contrast failed: {}", found["failure"]);
-        let label = format!("{} − {} {}", expected["arm"], expected["versus"], if expected["category"].is_null() { String::new() } else { format!("(category {})", expected["category"]) });
+            .find(|c| {
+                c["arm"] == expected["arm"]
+                    && c["versus"] == expected["versus"]
+                    && c["category"] == expected["category"]
+            })
+            .unwrap_or_else(|| {
+                panic!(
+                    "{source}: no contrast {} vs {} ({})",
+                    expected["arm"], expected["versus"], expected["category"]
+                )
+            });
+        assert!(
+            found["failure"].is_null(),
+            "{source}: contrast failed: {}",
+            found["failure"]
+        );
+        let label = format!(
+            "{} − {} {}",
+            expected["arm"],
+            expected["versus"],
+            if expected["category"].is_null() {
+                String::new()
+            } else {
+                format!("(category {})", expected["category"])
+            }
+        );
         let estimate = &found["estimate"];
-        for (field, theirs) in [("estimate", "estimate"), ("standard_error", "std_error"), ("statistic", "statistic"), ("p_value", "p_value"), ("lower", "lower"), ("upper", "upper")] {
-            worst = worst.max(close(&estimate[field], &expected[theirs], source, &format!("contrast {label} {field}")));
+        for (field, theirs) in [
+            ("estimate", "estimate"),
+            ("standard_error", "std_error"),
+            ("statistic", "statistic"),
+            ("p_value", "p_value"),
+            ("lower", "lower"),
+            ("upper", "upper"),
+        ] {
+            worst = worst.max(close(
+                &estimate[field],
+                &expected[theirs],
+                source,
+                &format!("contrast {label} {field}"),
+            ));
         }
         let ratio = &found["ratio"];
-        for (field, theirs) in [("estimate", "ratio"), ("lower", "ratio_lower"), ("upper", "ratio_upper")] {
-            worst = worst.max(close(&ratio[field], &expected[theirs], source, &format!("exp(contrast {label}) {field}")));
+        for (field, theirs) in [
+            ("estimate", "ratio"),
+            ("lower", "ratio_lower"),
+            ("upper", "ratio_upper"),
+        ] {
+            worst = worst.max(close(
+                &ratio[field],
+                &expected[theirs],
+                source,
+                &format!("exp(contrast {label}) {field}"),
+            ));
         }
     }
 
     // Overall tests of treatment: Wald chi-square from R's vcov by hand, likelihood ratio from
     // the nested fits' log-likelihoods.
-    let tests = analysis["treatment_tests"].as_array().expect("treatment tests");
-    assert!(analysis["treatment_test_failure"].is_null(), "{source}: {}", analysis["treatment_test_failure"]);
-    for (name, key) in [("Wald chi-square", "wald"), ("likelihood ratio", "likelihood_ratio")] {
-        let test = tests.iter().find(|test| test["statistic_name"] == name).unwrap_or_else(|| panic!("{source}: no {name} test"));
-        worst = worst.max(close(&test["statistic"], &reference[key]["statistic"], source, &format!("{name} statistic")));
-        worst = worst.max(close(&test["df1"], &reference[key]["df"], source, &format!("{name} df")));
-        worst = worst.max(close(&test["p_value"], &reference[key]["p_value"], source, &format!("{name} p-value")));
+    let tests = analysis["treatment_tests"]
+        .as_array()
+        .expect("treatment tests");
+    assert!(
+        analysis["treatment_test_failure"].is_null(),
+        "{source}: {}",
+        analysis["treatment_test_failure"]
+    );
+    for (name, key) in [
+        ("Wald chi-square", "wald"),
+        ("likelihood ratio", "likelihood_ratio"),
+    ] {
+        let test = tests
+            .iter()
+            .find(|test| test["statistic_name"] == name)
+            .unwrap_or_else(|| panic!("{source}: no {name} test"));
+        worst = worst.max(close(
+            &test["statistic"],
+            &reference[key]["statistic"],
+            source,
+            &format!("{name} statistic"),
+        ));
+        worst = worst.max(close(
+            &test["df1"],
+            &reference[key]["df"],
+            source,
+            &format!("{name} df"),
+        ));
+        worst = worst.max(close(
+            &test["p_value"],
+            &reference[key]["p_value"],
+            source,
+            &format!("{name} p-value"),
+        ));
     }
     worst
 }
@@ -158,25 +262,64 @@ analyses:
     let exclusions = analysis["exclusions"].as_array().expect("exclusions");
     assert_eq!(exclusions.len(), 1);
     assert_eq!(exclusions[0]["missing"], "LWT");
-    assert_eq!(exclusions[0]["per_arm"], serde_json::json!([2, 1, 0]), "subjects with LWT missing per arm");
+    assert_eq!(
+        exclusions[0]["per_arm"],
+        serde_json::json!([2, 1, 0]),
+        "subjects with LWT missing per arm"
+    );
     // The deviance and log-likelihood of the fit.
-    worst = worst.max(close(&analysis["fit"]["deviance"], &reference["deviance"], source, "deviance"));
-    worst = worst.max(close(&analysis["fit"]["log_likelihood"], &reference["log_likelihood"], source, "log-likelihood"));
+    worst = worst.max(close(
+        &analysis["fit"]["deviance"],
+        &reference["deviance"],
+        source,
+        "deviance",
+    ));
+    worst = worst.max(close(
+        &analysis["fit"]["log_likelihood"],
+        &reference["log_likelihood"],
+        source,
+        "log-likelihood",
+    ));
     // Standardised risks and risk differences (point estimates only; their variance is checked
     // in tests/marginal_reference.rs).
     let marginal = &analysis["marginal"];
     for expected in reference["standardised_risks"].as_array().expect("risks") {
-        let found = marginal["means"].as_array().expect("means").iter().find(|mean| mean["arm"] == expected["arm"]).expect("arm mean");
-        worst = worst.max(close(&found["mean"], &expected["mean"], source, &format!("standardised risk of {}", expected["arm"])));
+        let found = marginal["means"]
+            .as_array()
+            .expect("means")
+            .iter()
+            .find(|mean| mean["arm"] == expected["arm"])
+            .expect("arm mean");
+        worst = worst.max(close(
+            &found["mean"],
+            &expected["mean"],
+            source,
+            &format!("standardised risk of {}", expected["arm"]),
+        ));
     }
-    for expected in reference["risk_differences"].as_array().expect("risk differences") {
+    for expected in reference["risk_differences"]
+        .as_array()
+        .expect("risk differences")
+    {
         let found = marginal["effects"]
             .as_array()
             .expect("effects")
             .iter()
-            .find(|effect| effect["scale"] == "risk difference" && effect["arm"] == expected["arm"] && effect["versus"] == expected["versus"])
+            .find(|effect| {
+                effect["scale"] == "risk difference"
+                    && effect["arm"] == expected["arm"]
+                    && effect["versus"] == expected["versus"]
+            })
             .expect("risk difference");
-        worst = worst.max(close(&found["estimate"], &expected["estimate"], source, &format!("risk difference {} − {}", expected["arm"], expected["versus"])));
+        worst = worst.max(close(
+            &found["estimate"],
+            &expected["estimate"],
+            source,
+            &format!(
+                "risk difference {} − {}",
+                expected["arm"], expected["versus"]
+            ),
+        ));
     }
     eprintln!("birthwt_logit: largest relative error {worst:e}");
 }
@@ -213,8 +356,18 @@ analyses:
     let reference = reference("insurance_poisson");
     let mut worst = check_common(&analysis, &reference, source);
     assert_eq!(analysis["contrasts"][0]["ratio"]["name"], "rate ratio");
-    worst = worst.max(close(&analysis["fit"]["deviance"], &reference["deviance"], source, "deviance"));
-    worst = worst.max(close(&analysis["fit"]["log_likelihood"], &reference["log_likelihood"], source, "log-likelihood"));
+    worst = worst.max(close(
+        &analysis["fit"]["deviance"],
+        &reference["deviance"],
+        source,
+        "deviance",
+    ));
+    worst = worst.max(close(
+        &analysis["fit"]["log_likelihood"],
+        &reference["log_likelihood"],
+        source,
+        "log-likelihood",
+    ));
     eprintln!("insurance_poisson: largest relative error {worst:e}");
 }
 
@@ -249,9 +402,24 @@ analyses:
     let analysis = run("quine_negbin", plan);
     let reference = reference("quine_negbin");
     let mut worst = check_common(&analysis, &reference, source);
-    worst = worst.max(close(&analysis["fit"]["theta"], &reference["theta"], source, "theta"));
-    worst = worst.max(close(&analysis["fit"]["theta_standard_error"], &reference["theta_se"], source, "SE of theta"));
-    worst = worst.max(close(&analysis["fit"]["log_likelihood"], &reference["log_likelihood"], source, "log-likelihood"));
+    worst = worst.max(close(
+        &analysis["fit"]["theta"],
+        &reference["theta"],
+        source,
+        "theta",
+    ));
+    worst = worst.max(close(
+        &analysis["fit"]["theta_standard_error"],
+        &reference["theta_se"],
+        source,
+        "SE of theta",
+    ));
+    worst = worst.max(close(
+        &analysis["fit"]["log_likelihood"],
+        &reference["log_likelihood"],
+        source,
+        "log-likelihood",
+    ));
     eprintln!("quine_negbin: largest relative error {worst:e}");
 }
 
@@ -292,14 +460,21 @@ analyses:
     let reference = reference("housing_cumulative");
     let mut worst = check_common(&analysis, &reference, source);
     assert_eq!(analysis["contrasts"][0]["ratio"]["name"], "odds ratio");
-    worst = worst.max(close(&analysis["fit"]["log_likelihood"], &reference["log_likelihood"], source, "log-likelihood"));
+    worst = worst.max(close(
+        &analysis["fit"]["log_likelihood"],
+        &reference["log_likelihood"],
+        source,
+        "log-likelihood",
+    ));
 
     // The pooling rule merged exactly the two small types, with R's counts.
     let pooling = &analysis["pooling"][0];
     assert_eq!(pooling["stratum"], "TYPE");
     assert_eq!(pooling["into"], "pooled-types");
     let pooled = pooling["pooled_levels"].as_array().expect("pooled levels");
-    let expected = reference["pooled_levels"].as_array().expect("reference pooled levels");
+    let expected = reference["pooled_levels"]
+        .as_array()
+        .expect("reference pooled levels");
     assert_eq!(pooled.len(), expected.len());
     for (ours, theirs) in pooled.iter().zip(expected) {
         assert_eq!(ours["level"], theirs["level"]);
@@ -311,18 +486,46 @@ analyses:
         .as_array()
         .expect("checks")
         .iter()
-        .find(|check| check["name"].as_str().is_some_and(|name| name.contains("likelihood-ratio")))
+        .find(|check| {
+            check["name"]
+                .as_str()
+                .is_some_and(|name| name.contains("likelihood-ratio"))
+        })
         .expect("proportional-odds LR check")
         .clone();
     let rows = check["rows"].as_array().expect("rows");
-    let expected_rows = reference["proportional_odds"].as_array().expect("reference rows");
-    assert_eq!(rows.len(), expected_rows.len(), "{source}: proportional-odds rows");
+    let expected_rows = reference["proportional_odds"]
+        .as_array()
+        .expect("reference rows");
+    assert_eq!(
+        rows.len(),
+        expected_rows.len(),
+        "{source}: proportional-odds rows"
+    );
     for expected in expected_rows {
-        let row = rows.iter().find(|row| row["term"] == expected["term"]).unwrap_or_else(|| panic!("no row for {}", expected["term"]));
+        let row = rows
+            .iter()
+            .find(|row| row["term"] == expected["term"])
+            .unwrap_or_else(|| panic!("no row for {}", expected["term"]));
         let term = expected["term"].as_str().unwrap_or("?");
-        worst = worst.max(close(&row["statistic"], &expected["statistic"], source, &format!("proportional-odds LR of {term}")));
-        worst = worst.max(close(&row["df"], &expected["df"], source, &format!("proportional-odds df of {term}")));
-        worst = worst.max(close(&row["p_value"], &expected["p_value"], source, &format!("proportional-odds p of {term}")));
+        worst = worst.max(close(
+            &row["statistic"],
+            &expected["statistic"],
+            source,
+            &format!("proportional-odds LR of {term}"),
+        ));
+        worst = worst.max(close(
+            &row["df"],
+            &expected["df"],
+            source,
+            &format!("proportional-odds df of {term}"),
+        ));
+        worst = worst.max(close(
+            &row["p_value"],
+            &expected["p_value"],
+            source,
+            &format!("proportional-odds p of {term}"),
+        ));
     }
     eprintln!("housing_cumulative: largest relative error {worst:e}");
 }
@@ -331,7 +534,8 @@ analyses:
 fn multinomial_plan_with_non_first_reference_category_matches_r_on_housing() {
     // Source: R 4.2.2 nnet::multinom(SAT ~ INFL + CONT + TYPE) on MASS::housing expanded by Freq,
     // SAT releveled to reference Medium, polished by Newton-Raphson in R (make_reference.R).
-    let source = "R nnet::multinom + Newton polish, MASS::housing (housing_multinomial_reference.json)";
+    let source =
+        "R nnet::multinom + Newton polish, MASS::housing (housing_multinomial_reference.json)";
     let plan = r#"cairn-plan: 1
 study: {id: REF-housing-nominal, title: reference check, alpha: 0.05, sides: 2}
 data:
@@ -357,7 +561,15 @@ analyses:
     let analysis = run("housing", plan);
     let reference = reference("housing_multinomial");
     let mut worst = check_common(&analysis, &reference, source);
-    assert_eq!(analysis["contrasts"][0]["ratio"]["name"], "relative-risk ratio");
-    worst = worst.max(close(&analysis["fit"]["log_likelihood"], &reference["log_likelihood"], source, "log-likelihood"));
+    assert_eq!(
+        analysis["contrasts"][0]["ratio"]["name"],
+        "relative-risk ratio"
+    );
+    worst = worst.max(close(
+        &analysis["fit"]["log_likelihood"],
+        &reference["log_likelihood"],
+        source,
+        "log-likelihood",
+    ));
     eprintln!("housing_multinomial: largest relative error {worst:e}");
 }

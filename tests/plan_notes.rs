@@ -2,7 +2,7 @@
 
 mod common;
 
-use common::{cairn, copy_tree, root, Scratch};
+use common::{Scratch, cairn, copy_tree, root};
 
 #[test]
 fn hochberg_and_hommel_draw_a_note_about_their_assumption() {
@@ -12,12 +12,24 @@ fn hochberg_and_hommel_draw_a_note_about_their_assumption() {
         let study = Scratch::new(&format!("note-{procedure}"));
         copy_tree(&root().join("tests/cases/base"), &study.path);
         let plan = std::fs::read_to_string(study.path.join("plan.yaml")).expect("plan")
-            + &format!("multiplicity:\n  procedure: {procedure}\n  hypotheses:\n    - {{id: H1, analysis: primary, contrast: high-vs-placebo}}\n    - {{id: H2, analysis: primary, contrast: low-vs-placebo}}\n");
+            + &format!(
+                "multiplicity:\n  procedure: {procedure}\n  hypotheses:\n    - {{id: H1, analysis: primary, contrast: high-vs-placebo}}\n    - {{id: H2, analysis: primary, contrast: low-vs-placebo}}\n"
+            );
         std::fs::write(study.path.join("plan.yaml"), plan).expect("write");
         let outcome = cairn(&study.path, &["check", "plan.yaml"]);
         assert_eq!(outcome.code, 0, "{}", outcome.stderr);
-        assert!(outcome.stdout.starts_with("note: plan.yaml:"), "the note names where: {}", outcome.stdout);
-        assert!(outcome.stdout.contains("independent or positively dependent"), "{}", outcome.stdout);
+        assert!(
+            outcome.stdout.starts_with("note: plan.yaml:"),
+            "the note names where: {}",
+            outcome.stdout
+        );
+        assert!(
+            outcome
+                .stdout
+                .contains("independent or positively dependent"),
+            "{}",
+            outcome.stdout
+        );
     }
     // Holm assumes nothing of the kind: no note.
     let study = Scratch::new("note-holm");

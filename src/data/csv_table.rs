@@ -24,7 +24,10 @@ impl Table {
             file: self.file.clone(),
             line: self.lines.get(row).copied(),
             column: Some(column + 1),
-            path: self.headers.get(column).map(|header| format!("column {header}")),
+            path: self
+                .headers
+                .get(column)
+                .map(|header| format!("column {header}")),
         }
     }
 }
@@ -35,42 +38,91 @@ impl Table {
 pub fn read_table(bytes: &[u8], file: &str) -> Result<Table, Error> {
     let text = decode_utf8(bytes, file)?;
     let located = |line: Option<usize>, message: String| {
-        Error::one(Problem::new(ErrorKind::DataFormat, message).at(Location { file: file.to_string(), line, column: None, path: None }))
+        Error::one(Problem::new(ErrorKind::DataFormat, message).at(Location {
+            file: file.to_string(),
+            line,
+            column: None,
+            path: None,
+        }))
     };
     if text.trim().is_empty() {
-        return Err(located(None, "the file is empty; expected a header row and one row per subject".to_string()));
+        return Err(located(
+            None,
+            "the file is empty; expected a header row and one row per subject".to_string(),
+        ));
     }
     // The csv reader counts lines correctly only for LF endings, so CRLF is
     // folded to LF first (the raw bytes, not this text, are what is hashed).
     let text = text.replace("\r\n", "\n");
-    let mut reader = csv::ReaderBuilder::new().has_headers(true).flexible(false).from_reader(text.as_bytes());
+    let mut reader = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .flexible(false)
+        .from_reader(text.as_bytes());
     let headers: Vec<String> = match reader.headers() {
-        Ok(record) => record.iter().map(|header| header.trim().to_string()).collect(),
-        Err(cause) => return Err(located(Some(1), format!("cannot read the header row: {}", describe_csv(&cause)))),
+        Ok(record) => record
+            .iter()
+            .map(|header| header.trim().to_string())
+            .collect(),
+        Err(cause) => {
+            return Err(located(
+                Some(1),
+                format!("cannot read the header row: {}", describe_csv(&cause)),
+            ));
+        }
     };
     if headers.len() > super::MAX_COLUMNS {
         return Err(Error::one(
             Problem::new(
                 ErrorKind::Limit,
-                format!("the header row has {} columns; cairn reads data files of at most {} columns", headers.len(), super::MAX_COLUMNS),
+                format!(
+                    "the header row has {} columns; cairn reads data files of at most {} columns",
+                    headers.len(),
+                    super::MAX_COLUMNS
+                ),
             )
-            .at(Location { file: file.to_string(), line: Some(1), column: None, path: None }),
+            .at(Location {
+                file: file.to_string(),
+                line: Some(1),
+                column: None,
+                path: None,
+            }),
         ));
     }
     // Each name's first column, so that a repeated name is found without
     // comparing it with every earlier one.
-    let mut first_column: std::collections::BTreeMap<&str, usize> = std::collections::BTreeMap::new();
+    let mut first_column: std::collections::BTreeMap<&str, usize> =
+        std::collections::BTreeMap::new();
     for (index, header) in headers.iter().enumerate() {
         if header.is_empty() {
             return Err(Error::one(
-                Problem::new(ErrorKind::DataFormat, format!("column {} has no name in the header row", index + 1))
-                    .at(Location { file: file.to_string(), line: Some(1), column: Some(index + 1), path: None }),
+                Problem::new(
+                    ErrorKind::DataFormat,
+                    format!("column {} has no name in the header row", index + 1),
+                )
+                .at(Location {
+                    file: file.to_string(),
+                    line: Some(1),
+                    column: Some(index + 1),
+                    path: None,
+                }),
             ));
         }
         if let Some(&first) = first_column.get(header.as_str()) {
             return Err(Error::one(
-                Problem::new(ErrorKind::DataFormat, format!("column name \"{header}\" appears twice (columns {} and {})", first + 1, index + 1))
-                    .at(Location { file: file.to_string(), line: Some(1), column: Some(index + 1), path: None }),
+                Problem::new(
+                    ErrorKind::DataFormat,
+                    format!(
+                        "column name \"{header}\" appears twice (columns {} and {})",
+                        first + 1,
+                        index + 1
+                    ),
+                )
+                .at(Location {
+                    file: file.to_string(),
+                    line: Some(1),
+                    column: Some(index + 1),
+                    path: None,
+                }),
             ));
         }
         first_column.insert(header.as_str(), index);
@@ -80,7 +132,10 @@ pub fn read_table(bytes: &[u8], file: &str) -> Result<Table, Error> {
     for record in reader.records() {
         match record {
             Ok(record) => {
-                let line = record.position().map(|position| position.line() as usize).unwrap_or(0);
+                let line = record
+                    .position()
+                    .map(|position| position.line() as usize)
+                    .unwrap_or(0);
                 rows.push(record.iter().map(str::to_string).collect());
                 lines.push(line);
             }
@@ -91,15 +146,27 @@ pub fn read_table(bytes: &[u8], file: &str) -> Result<Table, Error> {
         }
     }
     if rows.is_empty() {
-        return Err(located(Some(1), "the file has a header row but no data rows".to_string()));
+        return Err(located(
+            Some(1),
+            "the file has a header row but no data rows".to_string(),
+        ));
     }
-    Ok(Table { file: file.to_string(), headers, rows, lines })
+    Ok(Table {
+        file: file.to_string(),
+        headers,
+        rows,
+        lines,
+    })
 }
 
 fn describe_csv(cause: &csv::Error) -> String {
     match cause.kind() {
-        csv::ErrorKind::UnequalLengths { expected_len, len, .. } => {
-            format!("this row has {len} fields but the header has {expected_len}; check for a stray or missing delimiter")
+        csv::ErrorKind::UnequalLengths {
+            expected_len, len, ..
+        } => {
+            format!(
+                "this row has {len} fields but the header has {expected_len}; check for a stray or missing delimiter"
+            )
         }
         csv::ErrorKind::Utf8 { .. } => "a field is not valid UTF-8".to_string(),
         _ => cause.to_string().to_lowercase(),
@@ -123,25 +190,54 @@ mod tests {
     fn ragged_rows_name_their_line() {
         let error = read_table(b"ID,X\n1,2\n3,4,5\n", "a.csv").unwrap_err();
         assert_eq!(error.kind(), ErrorKind::DataFormat);
-        assert_eq!(error.problems[0].location.as_ref().and_then(|l| l.line), Some(3));
+        assert_eq!(
+            error.problems[0].location.as_ref().and_then(|l| l.line),
+            Some(3)
+        );
     }
 
     #[test]
     fn too_many_columns_is_a_limit_error_on_the_header_line() {
-        let header = |count: usize| (0..count).map(|index| format!("C{index}")).collect::<Vec<_>>().join(",");
+        let header = |count: usize| {
+            (0..count)
+                .map(|index| format!("C{index}"))
+                .collect::<Vec<_>>()
+                .join(",")
+        };
         let row = |count: usize| vec!["1"; count].join(",");
-        let within = format!("{}\n{}\n", header(super::super::MAX_COLUMNS), row(super::super::MAX_COLUMNS));
+        let within = format!(
+            "{}\n{}\n",
+            header(super::super::MAX_COLUMNS),
+            row(super::super::MAX_COLUMNS)
+        );
         assert!(read_table(within.as_bytes(), "a.csv").is_ok());
-        let beyond = format!("{}\n{}\n", header(super::super::MAX_COLUMNS + 1), row(super::super::MAX_COLUMNS + 1));
+        let beyond = format!(
+            "{}\n{}\n",
+            header(super::super::MAX_COLUMNS + 1),
+            row(super::super::MAX_COLUMNS + 1)
+        );
         let error = read_table(beyond.as_bytes(), "a.csv").unwrap_err();
         assert_eq!(error.kind(), ErrorKind::Limit);
-        assert_eq!(error.problems[0].location.as_ref().and_then(|l| l.line), Some(1));
+        assert_eq!(
+            error.problems[0].location.as_ref().and_then(|l| l.line),
+            Some(1)
+        );
     }
 
     #[test]
     fn header_only_and_duplicate_columns_are_errors() {
-        assert!(read_table(b"ID,X\n", "a.csv").unwrap_err().problems[0].message.contains("no data rows"));
+        assert!(
+            read_table(b"ID,X\n", "a.csv").unwrap_err().problems[0]
+                .message
+                .contains("no data rows")
+        );
         let duplicate = read_table(b"ID,X,X\n1,2,3\n", "a.csv").unwrap_err();
-        assert_eq!(duplicate.problems[0].location.as_ref().and_then(|l| l.column), Some(3));
+        assert_eq!(
+            duplicate.problems[0]
+                .location
+                .as_ref()
+                .and_then(|l| l.column),
+            Some(3)
+        );
     }
 }

@@ -50,9 +50,12 @@ pub fn dummy_allocation(plan: &Plan, subjects: &Table, seed: u64) -> Table {
         .and_then(|&variable| subjects.column_index(&plan.variables[variable].name));
     // Group rows by stratum value, in sorted order of the values so the result
     // does not depend on row order within the file beyond the shuffle.
-    let mut strata: std::collections::BTreeMap<String, Vec<usize>> = std::collections::BTreeMap::new();
+    let mut strata: std::collections::BTreeMap<String, Vec<usize>> =
+        std::collections::BTreeMap::new();
     for (row, cells) in subjects.rows.iter().enumerate() {
-        let value = stratum_column.map(|column| cells[column].trim().to_string()).unwrap_or_default();
+        let value = stratum_column
+            .map(|column| cells[column].trim().to_string())
+            .unwrap_or_default();
         strata.entry(value).or_default().push(row);
     }
     let n_arms = plan.data.treatment.arms.len();
@@ -61,7 +64,9 @@ pub fn dummy_allocation(plan: &Plan, subjects: &Table, seed: u64) -> Table {
     for rows in strata.values() {
         // Start the dealing at a random arm so small strata do not all favour the first arms.
         let offset = generator.below(n_arms);
-        let mut arms: Vec<usize> = (0..rows.len()).map(|position| (position + offset) % n_arms).collect();
+        let mut arms: Vec<usize> = (0..rows.len())
+            .map(|position| (position + offset) % n_arms)
+            .collect();
         for index in (1..arms.len()).rev() {
             let other = generator.below(index + 1);
             arms.swap(index, other);
@@ -74,7 +79,14 @@ pub fn dummy_allocation(plan: &Plan, subjects: &Table, seed: u64) -> Table {
         .rows
         .iter()
         .zip(&arm_of_row)
-        .map(|(cells, &arm)| vec![key_column.map(|column| cells[column].clone()).unwrap_or_default(), plan.data.treatment.arms[arm].code.clone()])
+        .map(|(cells, &arm)| {
+            vec![
+                key_column
+                    .map(|column| cells[column].clone())
+                    .unwrap_or_default(),
+                plan.data.treatment.arms[arm].code.clone(),
+            ]
+        })
         .collect();
     Table {
         file: dummy_allocation_name(seed),
@@ -93,7 +105,13 @@ mod tests {
         // Reference outputs for seed 1234567, from the published SplitMix64 test vectors
         // (as used in the demo data generator's tests; Rosetta Code "Pseudo-random numbers/Splitmix64").
         let mut generator = SplitMix64(1234567);
-        let expected = [6457827717110365317u64, 3203168211198807973, 9817491932198370423, 4593380528125082431, 16408922859458223821];
+        let expected = [
+            6457827717110365317u64,
+            3203168211198807973,
+            9817491932198370423,
+            4593380528125082431,
+            16408922859458223821,
+        ];
         for value in expected {
             assert_eq!(generator.next(), value);
         }

@@ -17,9 +17,9 @@ mod csv_table;
 mod dummy;
 mod typing;
 
-pub use csv_table::{read_table, Table};
+pub use csv_table::{Table, read_table};
 pub use dummy::{dummy_allocation, dummy_allocation_name};
-pub use typing::{assemble, Column, JoinSummary, StudyData};
+pub use typing::{Column, JoinSummary, StudyData, assemble};
 
 use crate::error::{Error, ErrorKind, Location, Problem};
 
@@ -47,7 +47,12 @@ pub fn decode_utf8<'a>(bytes: &'a [u8], file: &str) -> Result<&'a str, Error> {
             // The prefix up to the error is valid UTF-8 by construction.
             let prefix = std::str::from_utf8(valid).unwrap_or_default();
             let line = prefix.matches('\n').count() + 1;
-            let column = prefix.rsplit('\n').next().map(|tail| tail.chars().count()).unwrap_or(0) + 1;
+            let column = prefix
+                .rsplit('\n')
+                .next()
+                .map(|tail| tail.chars().count())
+                .unwrap_or(0)
+                + 1;
             let offending = body[utf8_error.valid_up_to()];
             Err(Error::one(
                 Problem::new(
@@ -63,15 +68,22 @@ pub fn decode_utf8<'a>(bytes: &'a [u8], file: &str) -> Result<&'a str, Error> {
 /// Read a data file named in the plan, refusing files over the size limit
 /// before reading them.
 pub fn read_file(path: &std::path::Path, shown_as: &str) -> Result<Vec<u8>, Error> {
-    let metadata = std::fs::metadata(path).map_err(|cause| Error::io(shown_as, "read the data file", &cause))?;
+    let metadata = std::fs::metadata(path)
+        .map_err(|cause| Error::io(shown_as, "read the data file", &cause))?;
     if !metadata.is_file() {
-        return Err(Error::one(Problem::new(ErrorKind::Io, "expected a regular file").at(Location::file(shown_as))));
+        return Err(Error::one(
+            Problem::new(ErrorKind::Io, "expected a regular file").at(Location::file(shown_as)),
+        ));
     }
     if metadata.len() > MAX_FILE_BYTES {
         return Err(Error::one(
             Problem::new(
                 ErrorKind::Limit,
-                format!("the file has {} bytes; cairn reads data files of at most {} bytes", metadata.len(), MAX_FILE_BYTES),
+                format!(
+                    "the file has {} bytes; cairn reads data files of at most {} bytes",
+                    metadata.len(),
+                    MAX_FILE_BYTES
+                ),
             )
             .at(Location::file(shown_as)),
         ));
@@ -85,7 +97,10 @@ mod tests {
 
     #[test]
     fn bom_is_skipped_and_invalid_bytes_are_located() {
-        assert_eq!(decode_utf8(b"\xEF\xBB\xBFa,b\n", "f.csv").expect("valid"), "a,b\n");
+        assert_eq!(
+            decode_utf8(b"\xEF\xBB\xBFa,b\n", "f.csv").expect("valid"),
+            "a,b\n"
+        );
         let error = decode_utf8(b"a,b\n1,caf\xE9\n", "f.csv").unwrap_err();
         let location = error.problems[0].location.clone().expect("located");
         assert_eq!((location.line, location.column), (Some(2), Some(6)));

@@ -14,7 +14,10 @@ const PROBLEM_LIMIT: usize = 25;
 pub enum Column {
     Numeric(Vec<Option<f64>>),
     /// Codes index into `levels` (declared order, or sorted when taken from the data).
-    Categorical { levels: Vec<String>, codes: Vec<Option<usize>> },
+    Categorical {
+        levels: Vec<String>,
+        codes: Vec<Option<usize>>,
+    },
 }
 
 impl Column {
@@ -72,9 +75,17 @@ impl Collector {
         }
         if self.suppressed > 0 {
             let kind = self.problems[0].kind;
-            self.problems.push(Problem::new(kind, format!("{} more problems of the same kind are not listed", self.suppressed)));
+            self.problems.push(Problem::new(
+                kind,
+                format!(
+                    "{} more problems of the same kind are not listed",
+                    self.suppressed
+                ),
+            ));
         }
-        Err(Error { problems: self.problems })
+        Err(Error {
+            problems: self.problems,
+        })
     }
 }
 
@@ -83,26 +94,56 @@ impl Collector {
 pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<StudyData, Error> {
     let key = &plan.data.key;
     let treatment = &plan.data.treatment;
-    let mut collector = Collector { problems: Vec::new(), suppressed: 0 };
+    let mut collector = Collector {
+        problems: Vec::new(),
+        suppressed: 0,
+    };
 
     let subject_key = require_column(subjects, key, "the subject key (data.key)", &mut collector);
-    let allocation_key = require_column(allocation, key, "the subject key (data.key)", &mut collector);
-    let arm_column = require_column(allocation, &treatment.column, "the treatment column (data.treatment.column)", &mut collector);
+    let allocation_key = require_column(
+        allocation,
+        key,
+        "the subject key (data.key)",
+        &mut collector,
+    );
+    let arm_column = require_column(
+        allocation,
+        &treatment.column,
+        "the treatment column (data.treatment.column)",
+        &mut collector,
+    );
     let variable_columns: Vec<Option<usize>> = plan
         .variables
         .iter()
-        .map(|variable| require_column(subjects, &variable.name, "declared under variables", &mut collector))
+        .map(|variable| {
+            require_column(
+                subjects,
+                &variable.name,
+                "declared under variables",
+                &mut collector,
+            )
+        })
         .collect();
     collector.finish()?;
-    let mut collector = Collector { problems: Vec::new(), suppressed: 0 };
-    let (Some(subject_key), Some(allocation_key), Some(arm_column)) = (subject_key, allocation_key, arm_column) else {
-        return Err(Error::internal("a required column went missing after it was checked"));
+    let mut collector = Collector {
+        problems: Vec::new(),
+        suppressed: 0,
+    };
+    let (Some(subject_key), Some(allocation_key), Some(arm_column)) =
+        (subject_key, allocation_key, arm_column)
+    else {
+        return Err(Error::internal(
+            "a required column went missing after it was checked",
+        ));
     };
 
     let subject_rows = unique_keys(subjects, subject_key, &mut collector);
     let allocation_rows = unique_keys(allocation, allocation_key, &mut collector);
     collector.finish()?;
-    let mut collector = Collector { problems: Vec::new(), suppressed: 0 };
+    let mut collector = Collector {
+        problems: Vec::new(),
+        suppressed: 0,
+    };
 
     // Arms of every allocation row, checked against the plan's levels.
     let mut arm_of_key: BTreeMap<&str, usize> = BTreeMap::new();
@@ -113,27 +154,52 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
                 arm_of_key.insert(cells[allocation_key].trim(), arm);
             }
             None => {
-                let levels: Vec<&str> = treatment.arms.iter().map(|arm| arm.code.as_str()).collect();
+                let levels: Vec<&str> =
+                    treatment.arms.iter().map(|arm| arm.code.as_str()).collect();
                 collector.push(
-                    Problem::new(ErrorKind::DataValue, format!("treatment \"{code}\" is not one of the planned arms ({})", levels.join(", ")))
-                        .at(allocation.cell_location(row, arm_column)),
+                    Problem::new(
+                        ErrorKind::DataValue,
+                        format!(
+                            "treatment \"{code}\" is not one of the planned arms ({})",
+                            levels.join(", ")
+                        ),
+                    )
+                    .at(allocation.cell_location(row, arm_column)),
                 );
             }
         }
     }
 
-    let only_in_subjects: Vec<String> = subject_rows.iter().filter(|(id, _)| !arm_of_key.contains_key(id.as_str())).map(|(id, _)| id.clone()).collect();
-    let subject_set: BTreeMap<&str, ()> = subject_rows.iter().map(|(id, _)| (id.as_str(), ())).collect();
-    let only_in_allocation: Vec<String> =
-        allocation_rows.iter().filter(|(id, _)| !subject_set.contains_key(id.as_str())).map(|(id, _)| id.clone()).collect();
+    let only_in_subjects: Vec<String> = subject_rows
+        .iter()
+        .filter(|(id, _)| !arm_of_key.contains_key(id.as_str()))
+        .map(|(id, _)| id.clone())
+        .collect();
+    let subject_set: BTreeMap<&str, ()> = subject_rows
+        .iter()
+        .map(|(id, _)| (id.as_str(), ()))
+        .collect();
+    let only_in_allocation: Vec<String> = allocation_rows
+        .iter()
+        .filter(|(id, _)| !subject_set.contains_key(id.as_str()))
+        .map(|(id, _)| id.clone())
+        .collect();
     // A subject whose arm was rejected above would also count as unmatched;
     // saying so twice would bury the real problem.
     let arms_rejected = !collector.problems.is_empty();
-    if plan.data.unmatched == UnmatchedRule::Error && !arms_rejected && (!only_in_subjects.is_empty() || !only_in_allocation.is_empty()) {
+    if plan.data.unmatched == UnmatchedRule::Error
+        && !arms_rejected
+        && (!only_in_subjects.is_empty() || !only_in_allocation.is_empty())
+    {
         let sample = |ids: &[String]| ids.iter().take(5).cloned().collect::<Vec<_>>().join(", ");
         let mut parts = Vec::new();
         if !only_in_subjects.is_empty() {
-            parts.push(format!("{} subject(s) in {} have no allocation (first: {})", only_in_subjects.len(), subjects.file, sample(&only_in_subjects)));
+            parts.push(format!(
+                "{} subject(s) in {} have no allocation (first: {})",
+                only_in_subjects.len(),
+                subjects.file,
+                sample(&only_in_subjects)
+            ));
         }
         if !only_in_allocation.is_empty() {
             parts.push(format!(
@@ -147,26 +213,56 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
         collector.push(
             Problem::new(ErrorKind::DataJoin, parts.join("; "))
                 .at(Location::file(subjects.file.clone()))
-                .with_hint("set data.unmatched-subjects: exclude to leave them out and report them"),
+                .with_hint(
+                    "set data.unmatched-subjects: exclude to leave them out and report them",
+                ),
         );
     }
 
-    let matched_rows: Vec<usize> = subject_rows.iter().filter(|(id, _)| arm_of_key.contains_key(id.as_str())).map(|(_, row)| *row).collect();
-    let subject_ids: Vec<String> = matched_rows.iter().map(|row| subjects.rows[*row][subject_key].trim().to_string()).collect();
-    let arms: Vec<usize> = subject_ids.iter().map(|id| arm_of_key.get(id.as_str()).copied().unwrap_or(0)).collect();
+    let matched_rows: Vec<usize> = subject_rows
+        .iter()
+        .filter(|(id, _)| arm_of_key.contains_key(id.as_str()))
+        .map(|(_, row)| *row)
+        .collect();
+    let subject_ids: Vec<String> = matched_rows
+        .iter()
+        .map(|row| subjects.rows[*row][subject_key].trim().to_string())
+        .collect();
+    let arms: Vec<usize> = subject_ids
+        .iter()
+        .map(|id| arm_of_key.get(id.as_str()).copied().unwrap_or(0))
+        .collect();
 
     let mut columns = Vec::with_capacity(plan.variables.len());
     for (variable, column) in plan.variables.iter().zip(&variable_columns) {
         let Some(column) = *column else { continue };
-        columns.push(type_column(&variable.kind, subjects, column, &matched_rows, &plan.data.missing_codes, &mut collector));
+        columns.push(type_column(
+            &variable.kind,
+            subjects,
+            column,
+            &matched_rows,
+            &plan.data.missing_codes,
+            &mut collector,
+        ));
     }
     collector.finish()?;
     let mut out_of_range = Vec::new();
     for (variable, column) in plan.variables.iter().zip(&columns) {
-        let (Some((low, high)), Column::Numeric(values)) = (variable.range, column) else { continue };
-        let outside: Vec<usize> = values.iter().enumerate().filter(|(_, value)| value.is_some_and(|value| value < low || value > high)).map(|(row, _)| row).collect();
+        let (Some((low, high)), Column::Numeric(values)) = (variable.range, column) else {
+            continue;
+        };
+        let outside: Vec<usize> = values
+            .iter()
+            .enumerate()
+            .filter(|(_, value)| value.is_some_and(|value| value < low || value > high))
+            .map(|(row, _)| row)
+            .collect();
         if !outside.is_empty() {
-            let places = outside.iter().take(3).map(|&row| format!("{}:{}", subjects.file, subjects.lines[matched_rows[row]])).collect();
+            let places = outside
+                .iter()
+                .take(3)
+                .map(|&row| format!("{}:{}", subjects.file, subjects.lines[matched_rows[row]]))
+                .collect();
             out_of_range.push((variable.name.clone(), outside.len(), places));
         }
     }
@@ -177,15 +273,38 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
         only_in_subjects,
         only_in_allocation,
     };
-    Ok(StudyData { subject_ids, arms, columns, join, out_of_range })
+    Ok(StudyData {
+        subject_ids,
+        arms,
+        columns,
+        join,
+        out_of_range,
+    })
 }
 
-fn require_column(table: &Table, name: &str, role: &str, collector: &mut Collector) -> Option<usize> {
+fn require_column(
+    table: &Table,
+    name: &str,
+    role: &str,
+    collector: &mut Collector,
+) -> Option<usize> {
     let found = table.column_index(name);
     if found.is_none() {
-        let hint = crate::error::did_you_mean(name, table.headers.iter().map(String::as_str)).map(|close| format!("did you mean \"{close}\"?"));
-        let mut problem = Problem::new(ErrorKind::DataFormat, format!("no column \"{name}\" ({role}); the header has: {}", table.headers.join(", ")))
-            .at(Location { file: table.file.clone(), line: Some(1), column: None, path: None });
+        let hint = crate::error::did_you_mean(name, table.headers.iter().map(String::as_str))
+            .map(|close| format!("did you mean \"{close}\"?"));
+        let mut problem = Problem::new(
+            ErrorKind::DataFormat,
+            format!(
+                "no column \"{name}\" ({role}); the header has: {}",
+                table.headers.join(", ")
+            ),
+        )
+        .at(Location {
+            file: table.file.clone(),
+            line: Some(1),
+            column: None,
+            path: None,
+        });
         problem.hint = hint;
         collector.push(problem);
     }
@@ -199,13 +318,19 @@ fn unique_keys(table: &Table, column: usize, collector: &mut Collector) -> Vec<(
     for (row, cells) in table.rows.iter().enumerate() {
         let key = cells[column].trim();
         if key.is_empty() {
-            collector.push(Problem::new(ErrorKind::DataValue, "the subject key is empty").at(table.cell_location(row, column)));
+            collector.push(
+                Problem::new(ErrorKind::DataValue, "the subject key is empty")
+                    .at(table.cell_location(row, column)),
+            );
             continue;
         }
         if let Some(line) = first_line.get(key) {
             collector.push(
-                Problem::new(ErrorKind::DataValue, format!("subject key \"{key}\" appears twice (first on line {line})"))
-                    .at(table.cell_location(row, column)),
+                Problem::new(
+                    ErrorKind::DataValue,
+                    format!("subject key \"{key}\" appears twice (first on line {line})"),
+                )
+                .at(table.cell_location(row, column)),
             );
             continue;
         }
@@ -238,7 +363,11 @@ fn type_column(
                         Ok(value) => Some(value),
                         Err(expected) => {
                             collector.push(
-                                Problem::new(ErrorKind::DataValue, format!("expected {expected}; found \"{text}\"")).at(table.cell_location(row, column)),
+                                Problem::new(
+                                    ErrorKind::DataValue,
+                                    format!("expected {expected}; found \"{text}\""),
+                                )
+                                .at(table.cell_location(row, column)),
                             );
                             None
                         }
@@ -247,7 +376,10 @@ fn type_column(
                 .collect();
             Column::Numeric(values)
         }
-        VariableKind::Factor { levels: Some(levels) } | VariableKind::Ordinal { levels } => {
+        VariableKind::Factor {
+            levels: Some(levels),
+        }
+        | VariableKind::Ordinal { levels } => {
             let codes = rows
                 .iter()
                 .map(|&row| {
@@ -258,17 +390,31 @@ fn type_column(
                     let code = levels.iter().position(|level| level == text);
                     if code.is_none() {
                         collector.push(
-                            Problem::new(ErrorKind::DataValue, format!("\"{text}\" is not a declared level (levels: {})", levels.join(", ")))
-                                .at(table.cell_location(row, column)),
+                            Problem::new(
+                                ErrorKind::DataValue,
+                                format!(
+                                    "\"{text}\" is not a declared level (levels: {})",
+                                    levels.join(", ")
+                                ),
+                            )
+                            .at(table.cell_location(row, column)),
                         );
                     }
                     code
                 })
                 .collect();
-            Column::Categorical { levels: levels.clone(), codes }
+            Column::Categorical {
+                levels: levels.clone(),
+                codes,
+            }
         }
         VariableKind::Factor { levels: None } => {
-            let mut levels: Vec<String> = rows.iter().map(|&row| cell(row)).filter(|text| !is_missing(text)).map(str::to_string).collect();
+            let mut levels: Vec<String> = rows
+                .iter()
+                .map(|&row| cell(row))
+                .filter(|text| !is_missing(text))
+                .map(str::to_string)
+                .collect();
             levels.sort();
             levels.dedup();
             if levels.len() > super::MAX_LEVELS {
@@ -280,13 +426,22 @@ fn type_column(
                     )
                     .at(Location { file: table.file.clone(), line: Some(1), column: Some(column + 1), path: table.headers.get(column).map(|header| format!("column {header}")) }),
                 );
-                return Column::Categorical { levels: Vec::new(), codes: vec![None; rows.len()] };
+                return Column::Categorical {
+                    levels: Vec::new(),
+                    codes: vec![None; rows.len()],
+                };
             }
             let codes = rows
                 .iter()
                 .map(|&row| {
                     let text = cell(row);
-                    if is_missing(text) { None } else { levels.binary_search_by(|level| level.as_str().cmp(text)).ok() }
+                    if is_missing(text) {
+                        None
+                    } else {
+                        levels
+                            .binary_search_by(|level| level.as_str().cmp(text))
+                            .ok()
+                    }
                 })
                 .collect();
             Column::Categorical { levels, codes }
@@ -298,11 +453,20 @@ fn type_column(
 /// separators, hexadecimal, `inf`/`nan` and values outside the range of a
 /// double. On failure returns what was expected, for the message.
 pub fn parse_number(text: &str, whole: bool) -> Result<f64, &'static str> {
-    let expected = if whole { "a whole number of 0 or more" } else { "a number such as 12 or -3.5 (a full stop as decimal mark)" };
+    let expected = if whole {
+        "a whole number of 0 or more"
+    } else {
+        "a number such as 12 or -3.5 (a full stop as decimal mark)"
+    };
     let body = text.strip_prefix(['-', '+']).unwrap_or(text);
     let ordinary = !body.is_empty()
-        && body.chars().next().is_some_and(|first| first.is_ascii_digit() || first == '.')
-        && body.chars().all(|character| character.is_ascii_digit() || matches!(character, '.' | 'e' | 'E' | '-' | '+'));
+        && body
+            .chars()
+            .next()
+            .is_some_and(|first| first.is_ascii_digit() || first == '.')
+        && body.chars().all(|character| {
+            character.is_ascii_digit() || matches!(character, '.' | 'e' | 'E' | '-' | '+')
+        });
     if !ordinary {
         return Err(expected);
     }
@@ -325,8 +489,13 @@ mod tests {
         assert_eq!(parse_number("12", false), Ok(12.0));
         assert_eq!(parse_number("-3.5", false), Ok(-3.5));
         assert_eq!(parse_number("1e-3", false), Ok(0.001));
-        for bad in ["1,5", "1 000", "0x10", "inf", "NaN", "1e999", "", "--1", "5kg"] {
-            assert!(parse_number(bad, false).is_err(), "{bad} should be rejected");
+        for bad in [
+            "1,5", "1 000", "0x10", "inf", "NaN", "1e999", "", "--1", "5kg",
+        ] {
+            assert!(
+                parse_number(bad, false).is_err(),
+                "{bad} should be rejected"
+            );
         }
         assert!(parse_number("2.5", true).is_err());
         assert!(parse_number("-1", true).is_err());

@@ -98,14 +98,26 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
     let arms = &plan.data.treatment.arms;
     let population = &plan.populations[analysis.population];
     let fail = |message: String| {
-        Error::one(Problem::new(ErrorKind::DataValue, format!("analysis \"{}\": {message}", analysis.id)).at(analysis.origin.clone()))
+        Error::one(
+            Problem::new(
+                ErrorKind::DataValue,
+                format!("analysis \"{}\": {message}", analysis.id),
+            )
+            .at(analysis.origin.clone()),
+        )
     };
 
-    let Column::Categorical { levels: flag_levels, codes: flag_codes } = &data.columns[population.column] else {
+    let Column::Categorical {
+        levels: flag_levels,
+        codes: flag_codes,
+    } = &data.columns[population.column]
+    else {
         return Err(Error::internal("population flag column is not categorical"));
     };
     let in_population: Vec<usize> = (0..data.subject_ids.len())
-        .filter(|&row| flag_codes[row].is_some_and(|code| population.values.contains(&flag_levels[code])))
+        .filter(|&row| {
+            flag_codes[row].is_some_and(|code| population.values.contains(&flag_levels[code]))
+        })
         .collect();
     let mut in_population_per_arm = vec![0; arms.len()];
     for &row in &in_population {
@@ -123,14 +135,23 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
     let mut exclusions: Vec<Exclusion> = Vec::new();
     let mut analysed = Vec::with_capacity(in_population.len());
     for &row in &in_population {
-        match needed.iter().find(|&&variable| data.columns[variable].is_missing(row)) {
+        match needed
+            .iter()
+            .find(|&&variable| data.columns[variable].is_missing(row))
+        {
             None => analysed.push(row),
             Some(&variable) => {
                 let name = &plan.variables[variable].name;
-                let position = match exclusions.iter().position(|exclusion| &exclusion.variable == name) {
+                let position = match exclusions
+                    .iter()
+                    .position(|exclusion| &exclusion.variable == name)
+                {
                     Some(position) => position,
                     None => {
-                        exclusions.push(Exclusion { variable: name.clone(), per_arm: vec![0; arms.len()] });
+                        exclusions.push(Exclusion {
+                            variable: name.clone(),
+                            per_arm: vec![0; arms.len()],
+                        });
                         exclusions.len() - 1
                     }
                 };
@@ -139,18 +160,28 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
         }
     }
     // Report exclusions in the fixed order of the variables, not discovery order.
-    exclusions.sort_by_key(|exclusion| needed.iter().position(|&variable| plan.variables[variable].name == exclusion.variable));
+    exclusions.sort_by_key(|exclusion| {
+        needed
+            .iter()
+            .position(|&variable| plan.variables[variable].name == exclusion.variable)
+    });
 
     let mut analysed_per_arm = vec![0; arms.len()];
     for &row in &analysed {
         analysed_per_arm[data.arms[row]] += 1;
     }
     if analysed.is_empty() {
-        return Err(fail(format!("no subject in population \"{}\" has the endpoint and every covariate", population.id)));
+        return Err(fail(format!(
+            "no subject in population \"{}\" has the endpoint and every covariate",
+            population.id
+        )));
     }
     for (arm, count) in analysed_per_arm.iter().enumerate() {
         if *count == 0 {
-            return Err(fail(format!("arm \"{}\" has no analysed subjects in population \"{}\"", arms[arm].code, population.id)));
+            return Err(fail(format!(
+                "arm \"{}\" has no analysed subjects in population \"{}\"",
+                arms[arm].code, population.id
+            )));
         }
     }
 
@@ -175,7 +206,12 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
     let n = analysed.len();
     let mut column_names = vec!["(intercept)".to_string()];
     let mut columns: Vec<Vec<f64>> = vec![vec![1.0; n]];
-    let mut terms = vec![Term { name: "(intercept)".to_string(), kind: TermKind::Intercept, first_column: 0, column_count: 1 }];
+    let mut terms = vec![Term {
+        name: "(intercept)".to_string(),
+        kind: TermKind::Intercept,
+        first_column: 0,
+        column_count: 1,
+    }];
     let mut column_terms = vec![0];
 
     let mut treatment_columns = vec![None; arms.len()];
@@ -186,11 +222,21 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
             continue;
         }
         treatment_columns[arm_index] = Some(columns.len());
-        columns.push(analysed.iter().map(|&row| f64::from(u8::from(data.arms[row] == arm_index))).collect());
+        columns.push(
+            analysed
+                .iter()
+                .map(|&row| f64::from(u8::from(data.arms[row] == arm_index)))
+                .collect(),
+        );
         column_names.push(format!("treatment = {}", arm.label));
         column_terms.push(treatment_term);
     }
-    terms.push(Term { name: "treatment".to_string(), kind: TermKind::Treatment, first_column: first, column_count: columns.len() - first });
+    terms.push(Term {
+        name: "treatment".to_string(),
+        kind: TermKind::Treatment,
+        first_column: first,
+        column_count: columns.len() - first,
+    });
 
     for &covariate in &analysis.covariates {
         let name = plan.variables[covariate].name.clone();
@@ -198,33 +244,81 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
         let first = columns.len();
         match &data.columns[covariate] {
             Column::Numeric(values) => {
-                columns.push(analysed.iter().map(|&row| values[row].unwrap_or(0.0)).collect());
+                columns.push(
+                    analysed
+                        .iter()
+                        .map(|&row| values[row].unwrap_or(0.0))
+                        .collect(),
+                );
                 column_names.push(name.clone());
                 column_terms.push(term_index);
             }
             Column::Categorical { .. } => {
                 let values = factor_values(&data.columns[covariate], &analysed)?;
-                push_indicators(&name, &values, &mut columns, &mut column_names, &mut column_terms, term_index);
+                push_indicators(
+                    &name,
+                    &values,
+                    &mut columns,
+                    &mut column_names,
+                    &mut column_terms,
+                    term_index,
+                );
             }
         }
-        terms.push(Term { name, kind: TermKind::Covariate, first_column: first, column_count: columns.len() - first });
+        terms.push(Term {
+            name,
+            kind: TermKind::Covariate,
+            first_column: first,
+            column_count: columns.len() - first,
+        });
     }
     for (name, values) in &strata_values {
         let term_index = terms.len();
         let first = columns.len();
-        push_indicators(name, values, &mut columns, &mut column_names, &mut column_terms, term_index);
-        terms.push(Term { name: name.clone(), kind: TermKind::Stratum, first_column: first, column_count: columns.len() - first });
+        push_indicators(
+            name,
+            values,
+            &mut columns,
+            &mut column_names,
+            &mut column_terms,
+            term_index,
+        );
+        terms.push(Term {
+            name: name.clone(),
+            kind: TermKind::Stratum,
+            first_column: first,
+            column_count: columns.len() - first,
+        });
     }
     // A term with no columns (a factor with one level present) carries no information.
     let terms: Vec<Term> = terms;
 
-    let (response, response_levels): (Vec<f64>, Vec<String>) = match &data.columns[analysis.endpoint.variable] {
-        Column::Numeric(values) => (analysed.iter().map(|&row| values[row].unwrap_or(0.0)).collect(), Vec::new()),
-        Column::Categorical { levels, codes } => match analysis.endpoint.event {
-            Some(event) => (analysed.iter().map(|&row| f64::from(u8::from(codes[row] == Some(event)))).collect(), levels.clone()),
-            None => (analysed.iter().map(|&row| codes[row].unwrap_or(0) as f64).collect(), levels.clone()),
-        },
-    };
+    let (response, response_levels): (Vec<f64>, Vec<String>) =
+        match &data.columns[analysis.endpoint.variable] {
+            Column::Numeric(values) => (
+                analysed
+                    .iter()
+                    .map(|&row| values[row].unwrap_or(0.0))
+                    .collect(),
+                Vec::new(),
+            ),
+            Column::Categorical { levels, codes } => match analysis.endpoint.event {
+                Some(event) => (
+                    analysed
+                        .iter()
+                        .map(|&row| f64::from(u8::from(codes[row] == Some(event))))
+                        .collect(),
+                    levels.clone(),
+                ),
+                None => (
+                    analysed
+                        .iter()
+                        .map(|&row| codes[row].unwrap_or(0) as f64)
+                        .collect(),
+                    levels.clone(),
+                ),
+            },
+        };
     let offset = match exposure {
         None => None,
         Some(variable) => {
@@ -290,14 +384,25 @@ fn factor_values(column: &Column, rows: &[usize]) -> Result<FactorValues, Error>
             kept.push(level.clone());
         }
     }
-    let codes = rows.iter().map(|&row| codes[row].map(|code| remap[code]).unwrap_or(0)).collect();
-    Ok(FactorValues { levels: kept, codes })
+    let codes = rows
+        .iter()
+        .map(|&row| codes[row].map(|code| remap[code]).unwrap_or(0))
+        .collect();
+    Ok(FactorValues {
+        levels: kept,
+        codes,
+    })
 }
 
 /// Merge every level with fewer than `below` subjects into one level `into`,
 /// placed last. Returns the recoded values and what was done (None when no
 /// level was small).
-fn pool(values: FactorValues, below: usize, into: &str, variable: &str) -> (FactorValues, Option<PoolingOutcome>) {
+fn pool(
+    values: FactorValues,
+    below: usize,
+    into: &str,
+    variable: &str,
+) -> (FactorValues, Option<PoolingOutcome>) {
     let mut counts = vec![0usize; values.levels.len()];
     for &code in &values.codes {
         counts[code] += 1;
@@ -321,11 +426,23 @@ fn pool(values: FactorValues, below: usize, into: &str, variable: &str) -> (Fact
             remap[index] = pooled_code;
         }
     }
-    let pooled_levels: Vec<(String, usize)> =
-        values.levels.iter().zip(&counts).zip(&small).filter(|(_, is_small)| **is_small).map(|((level, count), _)| (level.clone(), *count)).collect();
+    let pooled_levels: Vec<(String, usize)> = values
+        .levels
+        .iter()
+        .zip(&counts)
+        .zip(&small)
+        .filter(|(_, is_small)| **is_small)
+        .map(|((level, count), _)| (level.clone(), *count))
+        .collect();
     let pooled_size = pooled_levels.iter().map(|(_, count)| count).sum();
     let codes = values.codes.iter().map(|&code| remap[code]).collect();
-    let outcome = PoolingOutcome { variable: variable.to_string(), pooled_levels, into: into.to_string(), pooled_size, threshold: below };
+    let outcome = PoolingOutcome {
+        variable: variable.to_string(),
+        pooled_levels,
+        into: into.to_string(),
+        pooled_size,
+        threshold: below,
+    };
     (FactorValues { levels, codes }, Some(outcome))
 }
 
@@ -338,7 +455,13 @@ fn push_indicators(
     term_index: usize,
 ) {
     for (level_index, level) in values.levels.iter().enumerate().skip(1) {
-        columns.push(values.codes.iter().map(|&code| f64::from(u8::from(code == level_index))).collect());
+        columns.push(
+            values
+                .codes
+                .iter()
+                .map(|&code| f64::from(u8::from(code == level_index)))
+                .collect(),
+        );
         column_names.push(format!("{name} = {level}"));
         column_terms.push(term_index);
     }
@@ -350,7 +473,10 @@ mod tests {
 
     #[test]
     fn pooling_merges_small_levels_into_one_last_level() {
-        let values = FactorValues { levels: vec!["A".into(), "B".into(), "C".into()], codes: vec![0, 0, 0, 1, 2, 2, 2] };
+        let values = FactorValues {
+            levels: vec!["A".into(), "B".into(), "C".into()],
+            codes: vec![0, 0, 0, 1, 2, 2, 2],
+        };
         let (pooled, outcome) = pool(values, 3, "pooled", "SITE");
         assert_eq!(pooled.levels, vec!["A", "C", "pooled"]);
         assert_eq!(pooled.codes, vec![0, 0, 0, 2, 1, 1, 1]);
@@ -365,8 +491,14 @@ mod tests {
 /// the analysed subjects, or one that the strata determine exactly (a
 /// site-level characteristic entered beside site). Both are refused, naming
 /// the covariate.
-fn check_covariates(analysis: &Analysis, terms: &[Term], matrix: &DMatrix<f64>, column_names: &[String], fail: &dyn Fn(String) -> Error) -> Result<(), Error> {
-    use crate::models::linear::{fit_least_squares, LeastSquaresOptions};
+fn check_covariates(
+    analysis: &Analysis,
+    terms: &[Term],
+    matrix: &DMatrix<f64>,
+    column_names: &[String],
+    fail: &dyn Fn(String) -> Error,
+) -> Result<(), Error> {
+    use crate::models::linear::{LeastSquaresOptions, fit_least_squares};
     let strata_columns: Vec<usize> = terms
         .iter()
         .filter(|term| term.kind == TermKind::Stratum)
@@ -374,13 +506,19 @@ fn check_covariates(analysis: &Analysis, terms: &[Term], matrix: &DMatrix<f64>, 
         .collect();
     for term in terms.iter().filter(|term| term.kind == TermKind::Covariate) {
         if term.column_count == 0 {
-            return Err(fail(format!("covariate \"{}\" takes a single value in the analysed subjects, so it cannot be adjusted for", term.name)));
+            return Err(fail(format!(
+                "covariate \"{}\" takes a single value in the analysed subjects, so it cannot be adjusted for",
+                term.name
+            )));
         }
         for column in term.first_column..term.first_column + term.column_count {
             let values = matrix.column(column);
             let first = values[0];
             if values.iter().all(|&value| value == first) {
-                return Err(fail(format!("covariate \"{}\" is constant ({first}) in the analysed subjects, so it cannot be adjusted for", column_names[column])));
+                return Err(fail(format!(
+                    "covariate \"{}\" is constant ({first}) in the analysed subjects, so it cannot be adjusted for",
+                    column_names[column]
+                )));
             }
             if strata_columns.is_empty() {
                 continue;
@@ -391,11 +529,19 @@ fn check_covariates(analysis: &Analysis, terms: &[Term], matrix: &DMatrix<f64>, 
             predictors.extend(&strata_columns);
             let design = matrix.select_columns(&predictors);
             let response: Vec<f64> = values.iter().copied().collect();
-            if let Ok(fit) = fit_least_squares(&design, &response, &LeastSquaresOptions::default()) {
+            if let Ok(fit) = fit_least_squares(&design, &response, &LeastSquaresOptions::default())
+            {
                 let mean = response.iter().sum::<f64>() / response.len() as f64;
-                let total: f64 = response.iter().map(|value| (value - mean) * (value - mean)).sum();
+                let total: f64 = response
+                    .iter()
+                    .map(|value| (value - mean) * (value - mean))
+                    .sum();
                 if total > 0.0 && fit.residual_sum_of_squares <= 1e-20 * total {
-                    let strata: Vec<&str> = terms.iter().filter(|term| term.kind == TermKind::Stratum).map(|term| term.name.as_str()).collect();
+                    let strata: Vec<&str> = terms
+                        .iter()
+                        .filter(|term| term.kind == TermKind::Stratum)
+                        .map(|term| term.name.as_str())
+                        .collect();
                     return Err(fail(format!(
                         "covariate column \"{}\" is determined exactly by the strata ({}): it is collinear with them and cannot be adjusted for beside them",
                         column_names[column],

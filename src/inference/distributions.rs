@@ -6,7 +6,9 @@
 //! the cumulative distribution so that confidence limits agree with
 //! reference libraries to about 1e-12 relative.
 
-use statrs::distribution::{ChiSquared, Continuous, ContinuousCDF, FisherSnedecor, Normal, StudentsT};
+use statrs::distribution::{
+    ChiSquared, Continuous, ContinuousCDF, FisherSnedecor, Normal, StudentsT,
+};
 use statrs::function::gamma::gamma_ur;
 
 /// Two-sided p-value of a t statistic with `df` degrees of freedom.
@@ -36,7 +38,12 @@ pub fn chi_square_upper_p(statistic: f64, df: f64) -> Option<f64> {
 /// The `probability` quantile of Student's t with `df` degrees of freedom.
 pub fn t_quantile(probability: f64, df: f64) -> Option<f64> {
     let distribution = StudentsT::new(0.0, 1.0, df).ok()?;
-    polish(|x| distribution.cdf(x), |x| distribution.pdf(x), distribution.inverse_cdf(probability), probability)
+    polish(
+        |x| distribution.cdf(x),
+        |x| distribution.pdf(x),
+        distribution.inverse_cdf(probability),
+        probability,
+    )
 }
 
 /// Upper tail of the standard normal, P(Z > x). Computed through the
@@ -60,11 +67,21 @@ pub fn normal_two_sided_p(statistic: f64) -> Option<f64> {
 /// The `probability` quantile of the standard normal distribution.
 pub fn normal_quantile(probability: f64) -> Option<f64> {
     let distribution = Normal::new(0.0, 1.0).ok()?;
-    polish(normal_cdf, |x| distribution.pdf(x), distribution.inverse_cdf(probability), probability)
+    polish(
+        normal_cdf,
+        |x| distribution.pdf(x),
+        distribution.inverse_cdf(probability),
+        probability,
+    )
 }
 
 /// A few Newton steps on cdf(x) = p from the library's starting quantile.
-fn polish(cdf: impl Fn(f64) -> f64, pdf: impl Fn(f64) -> f64, start: f64, probability: f64) -> Option<f64> {
+fn polish(
+    cdf: impl Fn(f64) -> f64,
+    pdf: impl Fn(f64) -> f64,
+    start: f64,
+    probability: f64,
+) -> Option<f64> {
     let mut x = start;
     if !x.is_finite() {
         return None;
@@ -112,7 +129,12 @@ mod tests {
         // Values printed by R 4.2.2 (Debian r-base) with sprintf("%.17g"): 2*pt(-2.5, 20), pf(4.2, 2, 50, lower.tail=FALSE), pchisq(30, 3, lower.tail=FALSE).
         assert!(relative(t_two_sided_p(2.5, 20.0).unwrap(), 0.021233545439132393) < 1e-10);
         assert!(relative(f_upper_p(4.2, 2.0, 50.0).unwrap(), 0.020602927324507081) < 1e-10);
-        assert!(relative(chi_square_upper_p(30.0, 3.0).unwrap(), 1.3800570312932547e-06) < 1e-10);
+        assert!(
+            relative(
+                chi_square_upper_p(30.0, 3.0).unwrap(),
+                1.3800570312932547e-06
+            ) < 1e-10
+        );
     }
 
     #[test]

@@ -6,12 +6,15 @@
 
 use super::distributions::normal_quantile;
 use super::{
-    bilinear, contrast_vector, describe_stop, drop_columns, exponentiate, likelihood_ratio, wald_chi_square, wald_estimate, AnalysisInference,
-    CheckOutcome, CoefficientRow, ContrastResult, FitStatistics, Finding,
+    AnalysisInference, CheckOutcome, CoefficientRow, ContrastResult, Finding, FitStatistics,
+    bilinear, contrast_vector, describe_stop, drop_columns, exponentiate, likelihood_ratio,
+    wald_chi_square, wald_estimate,
 };
 use crate::design::Design;
-use crate::models::glm::{fit_glm, profile_interval, CovarianceKind, Family, GlmData, GlmFit, GlmOptions, Link, Method};
 use crate::models::StopReason;
+use crate::models::glm::{
+    CovarianceKind, Family, GlmData, GlmFit, GlmOptions, Link, Method, fit_glm, profile_interval,
+};
 use crate::plan::{Analysis, Check, Fallback, GlmFamily, GlmSpec};
 
 /// The planned options for a GLM specification.
@@ -24,7 +27,11 @@ fn options_for(spec: &GlmSpec, family: GlmFamily, method: Method) -> GlmOptions 
     };
     let mut options = GlmOptions::new(engine_family, spec.link);
     options.method = method;
-    options.covariance = if spec.sandwich { CovarianceKind::SandwichHc0 } else { CovarianceKind::ModelBased };
+    options.covariance = if spec.sandwich {
+        CovarianceKind::SandwichHc0
+    } else {
+        CovarianceKind::ModelBased
+    };
     options
 }
 
@@ -46,11 +53,19 @@ fn family_words(family: GlmFamily, link: Link) -> String {
 }
 
 /// The scale of contrasts and, for log and logit links, the name of the exponentiated scale.
-fn scales(family: GlmFamily, link: Link, has_exposure: bool) -> (&'static str, Option<&'static str>) {
+fn scales(
+    family: GlmFamily,
+    link: Link,
+    has_exposure: bool,
+) -> (&'static str, Option<&'static str>) {
     match (family, link) {
         (_, Link::Logit) => ("log odds ratio", Some("odds ratio")),
-        (GlmFamily::Poisson | GlmFamily::NegativeBinomial, Link::Log) if has_exposure => ("log rate ratio", Some("rate ratio")),
-        (GlmFamily::Poisson | GlmFamily::NegativeBinomial, Link::Log) => ("log ratio of means", Some("ratio of means")),
+        (GlmFamily::Poisson | GlmFamily::NegativeBinomial, Link::Log) if has_exposure => {
+            ("log rate ratio", Some("rate ratio"))
+        }
+        (GlmFamily::Poisson | GlmFamily::NegativeBinomial, Link::Log) => {
+            ("log ratio of means", Some("ratio of means"))
+        }
         (_, Link::Log) => ("log ratio of means", Some("ratio of means")),
         (_, Link::Probit) => ("difference on the probit scale", None),
         (_, Link::CLogLog) => ("difference on the complementary log-log scale", None),
@@ -60,7 +75,11 @@ fn scales(family: GlmFamily, link: Link, has_exposure: bool) -> (&'static str, O
 }
 
 /// Fit the planned GLM to `design` and infer from it.
-pub fn analyse(design: &Design, analysis: &Analysis, spec: &GlmSpec) -> Result<AnalysisInference, String> {
+pub fn analyse(
+    design: &Design,
+    analysis: &Analysis,
+    spec: &GlmSpec,
+) -> Result<AnalysisInference, String> {
     let mut data = GlmData::new(&design.matrix, &design.response);
     if let Some(offset) = &design.offset {
         data = data.with_offset(offset);
@@ -78,31 +97,52 @@ pub fn analyse(design: &Design, analysis: &Analysis, spec: &GlmSpec) -> Result<A
             method = Method::Firth;
             options = options_for(spec, family, method);
             fit = fit_glm(&data, &options).map_err(|error| error.to_string())?;
-            let message = format!("{described}; as planned, the model was refitted by Firth's penalised likelihood");
-            findings.push(Finding { code: "FALLBACK-USED", severity: "minor", message: message.clone() });
+            let message = format!(
+                "{described}; as planned, the model was refitted by Firth's penalised likelihood"
+            );
+            findings.push(Finding {
+                code: "FALLBACK-USED",
+                severity: "minor",
+                message: message.clone(),
+            });
             fallback_used = Some(message);
         } else {
             let _ = columns;
-            return Err(format!("{described}: the maximum-likelihood estimates do not exist and no fallback was planned"));
+            return Err(format!(
+                "{described}: the maximum-likelihood estimates do not exist and no fallback was planned"
+            ));
         }
     }
-    if family == GlmFamily::Poisson && matches!(fit.stop_reason, StopReason::Converged { .. } | StopReason::SingularDesign { .. }) {
-        let threshold = analysis.fallbacks.iter().find_map(|fallback| match fallback {
-            Fallback::NegativeBinomialAbove(threshold) => Some(*threshold),
-            _ => None,
-        });
+    if family == GlmFamily::Poisson
+        && matches!(
+            fit.stop_reason,
+            StopReason::Converged { .. } | StopReason::SingularDesign { .. }
+        )
+    {
+        let threshold = analysis
+            .fallbacks
+            .iter()
+            .find_map(|fallback| match fallback {
+                Fallback::NegativeBinomialAbove(threshold) => Some(*threshold),
+                _ => None,
+            });
         let ratio = fit.pearson_chi_square / fit.residual_df.max(1) as f64;
         if let Some(threshold) = threshold
-            && ratio > threshold {
-                family = GlmFamily::NegativeBinomial;
-                options = options_for(spec, family, method);
-                fit = fit_glm(&data, &options).map_err(|error| error.to_string())?;
-                let message = format!(
-                    "Pearson chi-square / df of the Poisson fit is {ratio:.3}, above the planned {threshold}; as planned, a negative binomial model was fitted instead"
-                );
-                findings.push(Finding { code: "FALLBACK-USED", severity: "minor", message: message.clone() });
-                fallback_used = Some(message);
-            }
+            && ratio > threshold
+        {
+            family = GlmFamily::NegativeBinomial;
+            options = options_for(spec, family, method);
+            fit = fit_glm(&data, &options).map_err(|error| error.to_string())?;
+            let message = format!(
+                "Pearson chi-square / df of the Poisson fit is {ratio:.3}, above the planned {threshold}; as planned, a negative binomial model was fitted instead"
+            );
+            findings.push(Finding {
+                code: "FALLBACK-USED",
+                severity: "minor",
+                message: message.clone(),
+            });
+            fallback_used = Some(message);
+        }
     }
     match &fit.stop_reason {
         StopReason::Converged { .. } | StopReason::SingularDesign { .. } => {}
@@ -112,19 +152,37 @@ pub fn analyse(design: &Design, analysis: &Analysis, spec: &GlmSpec) -> Result<A
     let confidence_level = analysis.confidence_level;
     let df = fit.dispersion_estimated.then_some(fit.residual_df as f64);
     let aliased: Vec<bool> = fit.coefficients.iter().map(Option::is_none).collect();
-    let beta: Vec<f64> = fit.coefficients.iter().map(|value| value.unwrap_or(0.0)).collect();
+    let beta: Vec<f64> = fit
+        .coefficients
+        .iter()
+        .map(|value| value.unwrap_or(0.0))
+        .collect();
     let covariance = &fit.covariance;
     let coefficients = (0..design.column_names.len())
         .map(|column| CoefficientRow {
             name: design.column_names[column].clone(),
             term: design.terms[design.column_terms[column]].name.clone(),
             category: None,
-            estimate: fit.coefficients[column].and_then(|value| wald_estimate(value, covariance[(column, column)].sqrt(), df, confidence_level).ok()),
+            estimate: fit.coefficients[column].and_then(|value| {
+                wald_estimate(
+                    value,
+                    covariance[(column, column)].sqrt(),
+                    df,
+                    confidence_level,
+                )
+                .ok()
+            }),
         })
         .collect();
 
     // Overall tests of treatment: joint Wald and likelihood ratio against the model without treatment.
-    let treatment_columns: Vec<usize> = design.treatment_columns.iter().flatten().copied().filter(|&column| !aliased[column]).collect();
+    let treatment_columns: Vec<usize> = design
+        .treatment_columns
+        .iter()
+        .flatten()
+        .copied()
+        .filter(|&column| !aliased[column])
+        .collect();
     let mut treatment_tests = Vec::new();
     let mut failures = Vec::new();
     match wald_chi_square(&beta, covariance, &treatment_columns) {
@@ -144,53 +202,90 @@ pub fn analyse(design: &Design, analysis: &Analysis, spec: &GlmSpec) -> Result<A
         .iter()
         .map(|contrast| {
             let mut interval_method = "Wald";
-            let estimate = contrast_vector(design, &aliased, contrast.arm, contrast.versus).and_then(|weights| {
-                let value: f64 = weights.iter().zip(&beta).map(|(w, b)| w * b).sum();
-                let mut estimate = wald_estimate(value, bilinear(&weights, covariance, &weights).sqrt(), df, confidence_level)?;
-                // Profile limits exist for a single coefficient: a contrast against the reference arm.
-                let single = weights.iter().filter(|weight| **weight != 0.0).count() == 1;
-                if let (true, true, Some(critical)) = (profile, single, critical) {
-                    let column = weights.iter().position(|weight| *weight != 0.0).unwrap_or(0);
-                    let sign = weights[column];
-                    if let Ok(interval) = profile_interval(&data, &options, &fit, column, critical) {
-                        let (lower, upper) = if sign > 0.0 { (interval.lower, interval.upper) } else { (-interval.upper, -interval.lower) };
-                        if lower.is_finite() && upper.is_finite() {
-                            estimate.lower = lower;
-                            estimate.upper = upper;
-                            interval_method = "profile likelihood";
+            let estimate = contrast_vector(design, &aliased, contrast.arm, contrast.versus)
+                .and_then(|weights| {
+                    let value: f64 = weights.iter().zip(&beta).map(|(w, b)| w * b).sum();
+                    let mut estimate = wald_estimate(
+                        value,
+                        bilinear(&weights, covariance, &weights).sqrt(),
+                        df,
+                        confidence_level,
+                    )?;
+                    // Profile limits exist for a single coefficient: a contrast against the reference arm.
+                    let single = weights.iter().filter(|weight| **weight != 0.0).count() == 1;
+                    if let (true, true, Some(critical)) = (profile, single, critical) {
+                        let column = weights
+                            .iter()
+                            .position(|weight| *weight != 0.0)
+                            .unwrap_or(0);
+                        let sign = weights[column];
+                        if let Ok(interval) =
+                            profile_interval(&data, &options, &fit, column, critical)
+                        {
+                            let (lower, upper) = if sign > 0.0 {
+                                (interval.lower, interval.upper)
+                            } else {
+                                (-interval.upper, -interval.lower)
+                            };
+                            if lower.is_finite() && upper.is_finite() {
+                                estimate.lower = lower;
+                                estimate.upper = upper;
+                                interval_method = "profile likelihood";
+                            }
                         }
                     }
-                }
-                Ok(estimate)
-            });
+                    Ok(estimate)
+                });
             let ratio = match (ratio_name, &estimate) {
                 (Some(_), Ok(estimate)) => exponentiate(estimate),
                 _ => None,
             };
-            ContrastResult { id: contrast.id.clone(), arm: contrast.arm, versus: contrast.versus, category: None, estimate, ratio, interval_method, joint: None }
+            ContrastResult {
+                id: contrast.id.clone(),
+                arm: contrast.arm,
+                versus: contrast.versus,
+                category: None,
+                estimate,
+                ratio,
+                interval_method,
+                joint: None,
+            }
         })
         .collect();
 
     let mut checks = Vec::new();
     if analysis.checks.contains(&Check::TreatmentByStratum) {
-        checks.push(heterogeneity_check(design, &data, &options, &fit, analysis.check_level));
+        checks.push(heterogeneity_check(
+            design,
+            &data,
+            &options,
+            &fit,
+            analysis.check_level,
+        ));
     }
     for check in &checks {
         if check.failed {
-            findings.push(Finding { code: "CHECK-FAILED", severity: "minor", message: format!("{}: {}", check.name, check.verdict) });
+            findings.push(Finding {
+                code: "CHECK-FAILED",
+                severity: "minor",
+                message: format!("{}: {}", check.name, check.verdict),
+            });
         }
     }
 
     let mut model_words = family_words(family, spec.link);
     model_words.push_str(match method {
         Method::Firth => " was fitted by Firth's penalised likelihood",
-        Method::MaximumLikelihood => " was fitted by maximum likelihood (iteratively reweighted least squares)",
+        Method::MaximumLikelihood => {
+            " was fitted by maximum likelihood (iteratively reweighted least squares)"
+        }
     });
     if design.offset.is_some() {
         model_words.push_str(", with the log of the exposure as offset,");
     }
     let mut model_details = if spec.sandwich {
-        "Standard errors are White's heteroscedasticity-consistent (HC0) sandwich estimates.".to_string()
+        "Standard errors are White's heteroscedasticity-consistent (HC0) sandwich estimates."
+            .to_string()
     } else {
         "Standard errors come from the expected (Fisher) information at the estimate.".to_string()
     };
@@ -216,7 +311,11 @@ pub fn analyse(design: &Design, analysis: &Analysis, spec: &GlmSpec) -> Result<A
             pearson_chi_square: Some(fit.pearson_chi_square),
             theta: fit.theta.as_ref().map(|theta| theta.theta),
             theta_standard_error: fit.theta.as_ref().and_then(|theta| theta.standard_error),
-            aliased_columns: fit.aliased_columns.iter().map(|&column| design.column_names[column].clone()).collect(),
+            aliased_columns: fit
+                .aliased_columns
+                .iter()
+                .map(|&column| design.column_names[column].clone())
+                .collect(),
             ..FitStatistics::default()
         },
         coefficients,
@@ -226,7 +325,9 @@ pub fn analyse(design: &Design, analysis: &Analysis, spec: &GlmSpec) -> Result<A
         effect_scale,
         ratio_name,
         adjusted_means: Vec::new(),
-        marginal: Some(marginal_summary(design, analysis, &options, &fit, family, spec.link, method)),
+        marginal: Some(marginal_summary(
+            design, analysis, &options, &fit, family, spec.link, method,
+        )),
         checks,
         findings,
         fallback_used,
@@ -240,50 +341,98 @@ fn comparable(fit: &GlmFit) -> f64 {
 }
 
 /// Likelihood-ratio test of the treatment columns: the same model refitted without them.
-fn likelihood_ratio_test(design: &Design, data: &GlmData<'_>, options: &GlmOptions, fit: &GlmFit, treatment_columns: &[usize]) -> Result<super::JointTest, String> {
+fn likelihood_ratio_test(
+    design: &Design,
+    data: &GlmData<'_>,
+    options: &GlmOptions,
+    fit: &GlmFit,
+    treatment_columns: &[usize],
+) -> Result<super::JointTest, String> {
     let reduced_design = drop_columns(&design.matrix, treatment_columns);
     let mut reduced_data = GlmData::new(&reduced_design, data.response);
     if let Some(offset) = data.offset {
         reduced_data = reduced_data.with_offset(offset);
     }
     let reduced = fit_glm(&reduced_data, options).map_err(|error| error.to_string())?;
-    if !matches!(reduced.stop_reason, StopReason::Converged { .. } | StopReason::SingularDesign { .. }) {
-        return Err(format!("the model without treatment {}", describe_stop(&reduced.stop_reason, &[])));
+    if !matches!(
+        reduced.stop_reason,
+        StopReason::Converged { .. } | StopReason::SingularDesign { .. }
+    ) {
+        return Err(format!(
+            "the model without treatment {}",
+            describe_stop(&reduced.stop_reason, &[])
+        ));
     }
     if fit.dispersion_estimated {
         // Gamma: the scaled deviance difference, with the full model's dispersion.
         let statistic = ((reduced.deviance - fit.deviance) / fit.dispersion).max(0.0);
-        let p_value = super::distributions::chi_square_upper_p(statistic, treatment_columns.len() as f64).ok_or_else(|| "p-value not computable".to_string())?;
-        return Ok(super::JointTest { statistic_name: "likelihood ratio", statistic, df1: treatment_columns.len() as f64, df2: None, p_value });
+        let p_value =
+            super::distributions::chi_square_upper_p(statistic, treatment_columns.len() as f64)
+                .ok_or_else(|| "p-value not computable".to_string())?;
+        return Ok(super::JointTest {
+            statistic_name: "likelihood ratio",
+            statistic,
+            df1: treatment_columns.len() as f64,
+            df2: None,
+            p_value,
+        });
     }
-    likelihood_ratio(comparable(fit), comparable(&reduced), treatment_columns.len())
+    likelihood_ratio(
+        comparable(fit),
+        comparable(&reduced),
+        treatment_columns.len(),
+    )
 }
 
 /// Treatment-by-stratum interaction added to the planned model, tested by
 /// likelihood ratio; supportive only (ICH E9 discusses centre effects).
-fn heterogeneity_check(design: &Design, data: &GlmData<'_>, options: &GlmOptions, fit: &GlmFit, level: f64) -> CheckOutcome {
+fn heterogeneity_check(
+    design: &Design,
+    data: &GlmData<'_>,
+    options: &GlmOptions,
+    fit: &GlmFit,
+    level: f64,
+) -> CheckOutcome {
     let name = "Treatment-by-stratum interaction (supportive)".to_string();
     let (extended, added) = super::with_interactions(design);
     if added == 0 {
-        return CheckOutcome { name, rows: Vec::new(), failed: false, verdict: "no interaction columns could be formed".to_string(), details: Vec::new() };
+        return CheckOutcome {
+            name,
+            rows: Vec::new(),
+            failed: false,
+            verdict: "no interaction columns could be formed".to_string(),
+            details: Vec::new(),
+        };
     }
     let mut extended_data = GlmData::new(&extended, data.response);
     if let Some(offset) = data.offset {
         extended_data = extended_data.with_offset(offset);
     }
-    let outcome = fit_glm(&extended_data, options).map_err(|error| error.to_string()).and_then(|bigger| {
-        if !matches!(bigger.stop_reason, StopReason::Converged { .. } | StopReason::SingularDesign { .. }) {
-            return Err(describe_stop(&bigger.stop_reason, &[]));
-        }
-        let df = bigger.rank.saturating_sub(fit.rank);
-        if fit.dispersion_estimated {
-            let statistic = ((fit.deviance - bigger.deviance) / bigger.dispersion).max(0.0);
-            let p_value = super::distributions::chi_square_upper_p(statistic, df as f64).ok_or_else(|| "p-value not computable".to_string())?;
-            Ok(super::JointTest { statistic_name: "likelihood ratio", statistic, df1: df as f64, df2: None, p_value })
-        } else {
-            likelihood_ratio(comparable(&bigger), comparable(fit), df)
-        }
-    });
+    let outcome = fit_glm(&extended_data, options)
+        .map_err(|error| error.to_string())
+        .and_then(|bigger| {
+            if !matches!(
+                bigger.stop_reason,
+                StopReason::Converged { .. } | StopReason::SingularDesign { .. }
+            ) {
+                return Err(describe_stop(&bigger.stop_reason, &[]));
+            }
+            let df = bigger.rank.saturating_sub(fit.rank);
+            if fit.dispersion_estimated {
+                let statistic = ((fit.deviance - bigger.deviance) / bigger.dispersion).max(0.0);
+                let p_value = super::distributions::chi_square_upper_p(statistic, df as f64)
+                    .ok_or_else(|| "p-value not computable".to_string())?;
+                Ok(super::JointTest {
+                    statistic_name: "likelihood ratio",
+                    statistic,
+                    df1: df as f64,
+                    df2: None,
+                    p_value,
+                })
+            } else {
+                likelihood_ratio(comparable(&bigger), comparable(fit), df)
+            }
+        });
     super::heterogeneity_outcome(name, outcome, level)
 }
 
@@ -292,19 +441,44 @@ fn heterogeneity_check(design: &Design, data: &GlmData<'_>, options: &GlmOptions
 /// model-robust estimator when the fit is a maximum-likelihood fit with the
 /// canonical link (so residuals balance within arms); otherwise the
 /// influence-function (sandwich) estimator of the joint M-estimator.
-fn marginal_summary(design: &Design, analysis: &Analysis, options: &GlmOptions, fit: &GlmFit, family: GlmFamily, link: Link, method: Method) -> Result<super::MarginalSummary, String> {
-    use super::marginal::{marginal_effects, marginal_means, EffectScale, MarginalInput, MarginalVariance};
-    let canonical = matches!((family, link), (GlmFamily::Binomial, Link::Logit) | (GlmFamily::Poisson, Link::Log));
+fn marginal_summary(
+    design: &Design,
+    analysis: &Analysis,
+    options: &GlmOptions,
+    fit: &GlmFit,
+    family: GlmFamily,
+    link: Link,
+    method: Method,
+) -> Result<super::MarginalSummary, String> {
+    use super::marginal::{
+        EffectScale, MarginalInput, MarginalVariance, marginal_effects, marginal_means,
+    };
+    let canonical = matches!(
+        (family, link),
+        (GlmFamily::Binomial, Link::Logit) | (GlmFamily::Poisson, Link::Log)
+    );
     let (variance, words) = if canonical && method == Method::MaximumLikelihood {
-        (MarginalVariance::Robust, "the model-robust variance of Ye, Shao, Yi and Zhao (2023), which accounts for the covariates being sampled")
+        (
+            MarginalVariance::Robust,
+            "the model-robust variance of Ye, Shao, Yi and Zhao (2023), which accounts for the covariates being sampled",
+        )
     } else {
-        (MarginalVariance::InfluenceFunction, "the influence-function (sandwich) variance of the standardised means, which accounts for the covariates being sampled")
+        (
+            MarginalVariance::InfluenceFunction,
+            "the influence-function (sandwich) variance of the standardised means, which accounts for the covariates being sampled",
+        )
     };
     let engine_family = match (&options.family, fit.theta.as_ref()) {
-        (Family::NegativeBinomial { .. }, Some(theta)) => Family::NegativeBinomial { theta: Some(theta.theta) },
+        (Family::NegativeBinomial { .. }, Some(theta)) => Family::NegativeBinomial {
+            theta: Some(theta.theta),
+        },
         (other, _) => *other,
     };
-    let coefficients: Vec<f64> = fit.coefficients.iter().map(|value| value.unwrap_or(0.0)).collect();
+    let coefficients: Vec<f64> = fit
+        .coefficients
+        .iter()
+        .map(|value| value.unwrap_or(0.0))
+        .collect();
     let input = MarginalInput {
         design: &design.matrix,
         response: &design.response,
@@ -320,18 +494,41 @@ fn marginal_summary(design: &Design, analysis: &Analysis, options: &GlmOptions, 
     let means = marginal_means(&input).map_err(|error| error.to_string())?;
     let binary = family == GlmFamily::Binomial;
     let scales: Vec<(EffectScale, &'static str)> = if binary {
-        vec![(EffectScale::Difference, "risk difference"), (EffectScale::Ratio, "risk ratio"), (EffectScale::OddsRatio, "odds ratio")]
+        vec![
+            (EffectScale::Difference, "risk difference"),
+            (EffectScale::Ratio, "risk ratio"),
+            (EffectScale::OddsRatio, "odds ratio"),
+        ]
     } else {
-        vec![(EffectScale::Difference, "mean difference"), (EffectScale::Ratio, "ratio of means")]
+        vec![
+            (EffectScale::Difference, "mean difference"),
+            (EffectScale::Ratio, "ratio of means"),
+        ]
     };
-    let pairs: Vec<(usize, usize)> = analysis.contrasts.iter().map(|contrast| (contrast.arm, contrast.versus)).collect();
-    let critical = normal_quantile(0.5 + analysis.confidence_level / 2.0).ok_or_else(|| "the normal quantile could not be computed".to_string())?;
+    let pairs: Vec<(usize, usize)> = analysis
+        .contrasts
+        .iter()
+        .map(|contrast| (contrast.arm, contrast.versus))
+        .collect();
+    let critical = normal_quantile(0.5 + analysis.confidence_level / 2.0)
+        .ok_or_else(|| "the normal quantile could not be computed".to_string())?;
     let scale_list: Vec<EffectScale> = scales.iter().map(|(scale, _)| *scale).collect();
-    let effects = marginal_effects(&means, &pairs, &scale_list, critical).map_err(|error| error.to_string())?;
+    let effects = marginal_effects(&means, &pairs, &scale_list, critical)
+        .map_err(|error| error.to_string())?;
     let mut contrasts = Vec::new();
     for effect in &effects {
-        let Some(contrast) = analysis.contrasts.iter().find(|contrast| contrast.arm == effect.arm && contrast.versus == effect.versus) else { continue };
-        let scale = scales.iter().find(|(scale, _)| *scale == effect.scale).map(|(_, name)| *name).unwrap_or("difference");
+        let Some(contrast) = analysis
+            .contrasts
+            .iter()
+            .find(|contrast| contrast.arm == effect.arm && contrast.versus == effect.versus)
+        else {
+            continue;
+        };
+        let scale = scales
+            .iter()
+            .find(|(scale, _)| *scale == effect.scale)
+            .map(|(_, name)| *name)
+            .unwrap_or("difference");
         contrasts.push(super::MarginalContrast {
             id: contrast.id.clone(),
             arm: effect.arm,
@@ -346,7 +543,11 @@ fn marginal_summary(design: &Design, analysis: &Analysis, options: &GlmOptions, 
     }
     Ok(super::MarginalSummary {
         variance: words.to_string(),
-        means: means.arms.iter().map(|arm| (arm.arm, arm.mean, arm.standard_error)).collect(),
+        means: means
+            .arms
+            .iter()
+            .map(|arm| (arm.arm, arm.mean, arm.standard_error))
+            .collect(),
         effects: contrasts,
     })
 }

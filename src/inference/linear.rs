@@ -3,36 +3,67 @@
 //! freedom as reference.
 
 use super::distributions::f_upper_p;
-use super::{bilinear, contrast_vector, wald_estimate, AnalysisInference, ArmMean, CoefficientRow, ContrastResult, FitStatistics, JointTest};
+use super::{
+    AnalysisInference, ArmMean, CoefficientRow, ContrastResult, FitStatistics, JointTest, bilinear,
+    contrast_vector, wald_estimate,
+};
 use crate::design::Design;
-use crate::models::linear::{fit_least_squares, LeastSquaresFit, LeastSquaresOptions};
+use crate::models::linear::{LeastSquaresFit, LeastSquaresOptions, fit_least_squares};
 use crate::plan::Contrast;
 use nalgebra::DMatrix;
 
 /// Fit the planned linear model to `design` and infer from it.
-pub fn analyse(design: &Design, analysis: &crate::plan::Analysis) -> Result<AnalysisInference, String> {
-    let fit = fit_least_squares(&design.matrix, &design.response, &LeastSquaresOptions::default()).map_err(|error| error.to_string())?;
+pub fn analyse(
+    design: &Design,
+    analysis: &crate::plan::Analysis,
+) -> Result<AnalysisInference, String> {
+    let fit = fit_least_squares(
+        &design.matrix,
+        &design.response,
+        &LeastSquaresOptions::default(),
+    )
+    .map_err(|error| error.to_string())?;
     let mut inference = infer(design, &fit, &analysis.contrasts, analysis.confidence_level)?;
-    if analysis.checks.contains(&crate::plan::Check::TreatmentByStratum) {
+    if analysis
+        .checks
+        .contains(&crate::plan::Check::TreatmentByStratum)
+    {
         let name = "Treatment-by-stratum interaction (supportive)".to_string();
         let (extended, added) = super::with_interactions(design);
         let outcome = if added == 0 {
             Err("no interaction columns could be formed".to_string())
         } else {
-            fit_least_squares(&extended, &design.response, &LeastSquaresOptions::default()).map_err(|error| error.to_string()).and_then(|bigger| {
-                let df1 = bigger.rank.saturating_sub(fit.rank);
-                let df2 = bigger.residual_df;
-                if df1 == 0 || df2 == 0 || bigger.residual_sum_of_squares <= 0.0 {
-                    return Err("the interaction model leaves no degrees of freedom to test".to_string());
-                }
-                let statistic = ((fit.residual_sum_of_squares - bigger.residual_sum_of_squares) / df1 as f64) / (bigger.residual_sum_of_squares / df2 as f64);
-                let p_value = f_upper_p(statistic.max(0.0), df1 as f64, df2 as f64).ok_or_else(|| "the F p-value could not be computed".to_string())?;
-                Ok(JointTest { statistic_name: "F", statistic: statistic.max(0.0), df1: df1 as f64, df2: Some(df2 as f64), p_value })
-            })
+            fit_least_squares(&extended, &design.response, &LeastSquaresOptions::default())
+                .map_err(|error| error.to_string())
+                .and_then(|bigger| {
+                    let df1 = bigger.rank.saturating_sub(fit.rank);
+                    let df2 = bigger.residual_df;
+                    if df1 == 0 || df2 == 0 || bigger.residual_sum_of_squares <= 0.0 {
+                        return Err("the interaction model leaves no degrees of freedom to test"
+                            .to_string());
+                    }
+                    let statistic = ((fit.residual_sum_of_squares
+                        - bigger.residual_sum_of_squares)
+                        / df1 as f64)
+                        / (bigger.residual_sum_of_squares / df2 as f64);
+                    let p_value = f_upper_p(statistic.max(0.0), df1 as f64, df2 as f64)
+                        .ok_or_else(|| "the F p-value could not be computed".to_string())?;
+                    Ok(JointTest {
+                        statistic_name: "F",
+                        statistic: statistic.max(0.0),
+                        df1: df1 as f64,
+                        df2: Some(df2 as f64),
+                        p_value,
+                    })
+                })
         };
         let check = super::heterogeneity_outcome(name, outcome, analysis.check_level);
         if check.failed {
-            inference.findings.push(super::Finding { code: "CHECK-FAILED", severity: "minor", message: format!("{}: {}", check.name, check.verdict) });
+            inference.findings.push(super::Finding {
+                code: "CHECK-FAILED",
+                severity: "minor",
+                message: format!("{}: {}", check.name, check.verdict),
+            });
         }
         inference.checks.push(check);
     }
@@ -40,13 +71,21 @@ pub fn analyse(design: &Design, analysis: &crate::plan::Analysis) -> Result<Anal
 }
 
 /// Infer from `fit` of `design`; intervals at `confidence_level` (two-sided).
-pub fn infer(design: &Design, fit: &LeastSquaresFit, contrasts: &[Contrast], confidence_level: f64) -> Result<AnalysisInference, String> {
+pub fn infer(
+    design: &Design,
+    fit: &LeastSquaresFit,
+    contrasts: &[Contrast],
+    confidence_level: f64,
+) -> Result<AnalysisInference, String> {
     let residual_df = fit.residual_df;
-    let residual_sd = fit
-        .residual_standard_deviation()
-        .ok_or_else(|| "no residual degrees of freedom are left, so no standard error can be estimated".to_string())?;
+    let residual_sd = fit.residual_standard_deviation().ok_or_else(|| {
+        "no residual degrees of freedom are left, so no standard error can be estimated".to_string()
+    })?;
     if residual_sd == 0.0 {
-        return Err("the model fits the data exactly (residual SD is zero); standard errors are undefined".to_string());
+        return Err(
+            "the model fits the data exactly (residual SD is zero); standard errors are undefined"
+                .to_string(),
+        );
     }
     let df = residual_df as f64;
     let variance = residual_sd * residual_sd;
@@ -58,21 +97,48 @@ pub fn infer(design: &Design, fit: &LeastSquaresFit, contrasts: &[Contrast], con
             name: design.column_names[column].clone(),
             term: design.terms[design.column_terms[column]].name.clone(),
             category: None,
-            estimate: fit.coefficients[column].and_then(|value| wald_estimate(value, covariance[(column, column)].sqrt(), Some(df), confidence_level).ok()),
+            estimate: fit.coefficients[column].and_then(|value| {
+                wald_estimate(
+                    value,
+                    covariance[(column, column)].sqrt(),
+                    Some(df),
+                    confidence_level,
+                )
+                .ok()
+            }),
         })
         .collect();
 
-    let beta: Vec<f64> = fit.coefficients.iter().map(|value| value.unwrap_or(0.0)).collect();
+    let beta: Vec<f64> = fit
+        .coefficients
+        .iter()
+        .map(|value| value.unwrap_or(0.0))
+        .collect();
     let treatment_test = treatment_f_test(design, fit, &beta, &covariance, df);
 
     let contrast_results = contrasts
         .iter()
         .map(|contrast| {
-            let estimate = contrast_vector(design, &aliased, contrast.arm, contrast.versus).and_then(|weights| {
-                let value: f64 = weights.iter().zip(&beta).map(|(w, b)| w * b).sum();
-                wald_estimate(value, bilinear(&weights, &covariance, &weights).sqrt(), Some(df), confidence_level)
-            });
-            ContrastResult { id: contrast.id.clone(), arm: contrast.arm, versus: contrast.versus, category: None, estimate, ratio: None, interval_method: "Wald", joint: None }
+            let estimate = contrast_vector(design, &aliased, contrast.arm, contrast.versus)
+                .and_then(|weights| {
+                    let value: f64 = weights.iter().zip(&beta).map(|(w, b)| w * b).sum();
+                    wald_estimate(
+                        value,
+                        bilinear(&weights, &covariance, &weights).sqrt(),
+                        Some(df),
+                        confidence_level,
+                    )
+                });
+            ContrastResult {
+                id: contrast.id.clone(),
+                arm: contrast.arm,
+                versus: contrast.versus,
+                category: None,
+                estimate,
+                ratio: None,
+                interval_method: "Wald",
+                joint: None,
+            }
         })
         .collect();
 
@@ -83,7 +149,12 @@ pub fn infer(design: &Design, fit: &LeastSquaresFit, contrasts: &[Contrast], con
             } else {
                 let weights = averaged_row(design, arm);
                 let value: f64 = weights.iter().zip(&beta).map(|(w, b)| w * b).sum();
-                wald_estimate(value, bilinear(&weights, &covariance, &weights).sqrt(), Some(df), confidence_level)
+                wald_estimate(
+                    value,
+                    bilinear(&weights, &covariance, &weights).sqrt(),
+                    Some(df),
+                    confidence_level,
+                )
             };
             ArmMean { arm, estimate }
         })
@@ -97,8 +168,11 @@ pub fn infer(design: &Design, fit: &LeastSquaresFit, contrasts: &[Contrast], con
         Err(reason) => (Vec::new(), Some(reason)),
     };
     Ok(AnalysisInference {
-        model_words: "A linear model (analysis of covariance) was fitted by least squares".to_string(),
-        model_details: "Standard errors use the residual variance on the residual degrees of freedom.".to_string(),
+        model_words: "A linear model (analysis of covariance) was fitted by least squares"
+            .to_string(),
+        model_details:
+            "Standard errors use the residual variance on the residual degrees of freedom."
+                .to_string(),
         fit: FitStatistics {
             n_analysed: fit.n_observations,
             n_parameters: fit.n_columns,
@@ -110,7 +184,11 @@ pub fn infer(design: &Design, fit: &LeastSquaresFit, contrasts: &[Contrast], con
             residual_sd: Some(residual_sd),
             r_squared,
             adjusted_r_squared,
-            aliased_columns: fit.aliased_columns.iter().map(|&column| design.column_names[column].clone()).collect(),
+            aliased_columns: fit
+                .aliased_columns
+                .iter()
+                .map(|&column| design.column_names[column].clone())
+                .collect(),
             ..FitStatistics::default()
         },
         coefficients,
@@ -133,7 +211,11 @@ pub(crate) fn averaged_row(design: &Design, arm: usize) -> Vec<f64> {
     let n = design.n_rows() as f64;
     (0..design.column_names.len())
         .map(|column| {
-            if let Some(position) = design.treatment_columns.iter().position(|indicator| *indicator == Some(column)) {
+            if let Some(position) = design
+                .treatment_columns
+                .iter()
+                .position(|indicator| *indicator == Some(column))
+            {
                 f64::from(u8::from(position == arm))
             } else {
                 design.matrix.column(column).iter().sum::<f64>() / n
@@ -145,11 +227,30 @@ pub(crate) fn averaged_row(design: &Design, arm: usize) -> Vec<f64> {
 /// The F test that every non-reference arm's coefficient is zero, as the Wald
 /// form βₜᵀ Vₜ⁻¹ βₜ / q, which equals the extra-sum-of-squares F for a
 /// linear model.
-fn treatment_f_test(design: &Design, fit: &LeastSquaresFit, beta: &[f64], covariance: &DMatrix<f64>, df: f64) -> Result<JointTest, String> {
-    let columns: Vec<usize> = design.treatment_columns.iter().flatten().copied().filter(|&column| fit.coefficients[column].is_some()).collect();
+fn treatment_f_test(
+    design: &Design,
+    fit: &LeastSquaresFit,
+    beta: &[f64],
+    covariance: &DMatrix<f64>,
+    df: f64,
+) -> Result<JointTest, String> {
+    let columns: Vec<usize> = design
+        .treatment_columns
+        .iter()
+        .flatten()
+        .copied()
+        .filter(|&column| fit.coefficients[column].is_some())
+        .collect();
     let wald = super::wald_chi_square(beta, covariance, &columns)?;
     let q = wald.df1;
     let statistic = wald.statistic / q;
-    let p_value = f_upper_p(statistic, q, df).ok_or_else(|| "the F p-value could not be computed".to_string())?;
-    Ok(JointTest { statistic_name: "F", statistic, df1: q, df2: Some(df), p_value })
+    let p_value = f_upper_p(statistic, q, df)
+        .ok_or_else(|| "the F p-value could not be computed".to_string())?;
+    Ok(JointTest {
+        statistic_name: "F",
+        statistic,
+        df1: q,
+        df2: Some(df),
+        p_value,
+    })
 }

@@ -110,8 +110,8 @@
 
 #[allow(unused_imports)]
 use crate::models::portable::Portable;
-use nalgebra::DMatrix;
 use libm::erfc;
+use nalgebra::DMatrix;
 
 use crate::models::glm::{Family, Link};
 

@@ -218,37 +218,69 @@ pub(crate) fn bilinear(a: &[f64], covariance: &DMatrix<f64>, b: &[f64]) -> f64 {
 
 /// A Wald estimate with a normal reference (GLMs with fixed dispersion,
 /// ordinal and nominal models) or a t reference with `df`.
-pub(crate) fn wald_estimate(value: f64, standard_error: f64, df: Option<f64>, confidence_level: f64) -> Result<Estimate, String> {
+pub(crate) fn wald_estimate(
+    value: f64,
+    standard_error: f64,
+    df: Option<f64>,
+    confidence_level: f64,
+) -> Result<Estimate, String> {
     use distributions::{normal_quantile, normal_two_sided_p, t_quantile, t_two_sided_p};
     if !(standard_error > 0.0 && standard_error.is_finite() && value.is_finite()) {
         return Err("its standard error is zero or undefined".to_string());
     }
     let statistic = value / standard_error;
     let (critical, p_value) = match df {
-        Some(df) => (t_quantile(0.5 + confidence_level / 2.0, df), t_two_sided_p(statistic, df)),
-        None => (normal_quantile(0.5 + confidence_level / 2.0), normal_two_sided_p(statistic)),
+        Some(df) => (
+            t_quantile(0.5 + confidence_level / 2.0, df),
+            t_two_sided_p(statistic, df),
+        ),
+        None => (
+            normal_quantile(0.5 + confidence_level / 2.0),
+            normal_two_sided_p(statistic),
+        ),
     };
     let (Some(critical), Some(p_value)) = (critical, p_value) else {
         return Err("its p-value or interval could not be computed".to_string());
     };
-    Ok(Estimate { value, standard_error, statistic, df, p_value, lower: value - critical * standard_error, upper: value + critical * standard_error })
+    Ok(Estimate {
+        value,
+        standard_error,
+        statistic,
+        df,
+        p_value,
+        lower: value - critical * standard_error,
+        upper: value + critical * standard_error,
+    })
 }
 
 /// exp of an estimate and its limits.
 pub(crate) fn exponentiate(estimate: &Estimate) -> Option<RatioEstimate> {
-    let ratio = RatioEstimate { estimate: libm::exp(estimate.value), lower: libm::exp(estimate.lower), upper: libm::exp(estimate.upper) };
-    (ratio.estimate.is_finite() && ratio.lower.is_finite() && ratio.upper.is_finite()).then_some(ratio)
+    let ratio = RatioEstimate {
+        estimate: libm::exp(estimate.value),
+        lower: libm::exp(estimate.lower),
+        upper: libm::exp(estimate.upper),
+    };
+    (ratio.estimate.is_finite() && ratio.lower.is_finite() && ratio.upper.is_finite())
+        .then_some(ratio)
 }
 
 /// L for "arm minus versus" over `n_columns` coefficients: +1 on the arm's
 /// indicator, −1 on the other's (the reference arm has no indicator).
 /// `aliased` tells which columns were not estimated.
-pub(crate) fn contrast_vector(design: &Design, aliased: &[bool], arm: usize, versus: usize) -> Result<Vec<f64>, String> {
+pub(crate) fn contrast_vector(
+    design: &Design,
+    aliased: &[bool],
+    arm: usize,
+    versus: usize,
+) -> Result<Vec<f64>, String> {
     let mut weights = vec![0.0; design.column_names.len()];
     for (index, sign) in [(arm, 1.0), (versus, -1.0)] {
         if let Some(column) = design.treatment_columns[index] {
             if aliased[column] {
-                return Err(format!("the indicator of \"{}\" is aliased with other terms", design.column_names[column]));
+                return Err(format!(
+                    "the indicator of \"{}\" is aliased with other terms",
+                    design.column_names[column]
+                ));
             }
             weights[column] += sign;
         }
@@ -257,17 +289,30 @@ pub(crate) fn contrast_vector(design: &Design, aliased: &[bool], arm: usize, ver
 }
 
 /// The joint Wald χ² test that the coefficients in `columns` are all zero.
-pub(crate) fn wald_chi_square(beta: &[f64], covariance: &DMatrix<f64>, columns: &[usize]) -> Result<JointTest, String> {
+pub(crate) fn wald_chi_square(
+    beta: &[f64],
+    covariance: &DMatrix<f64>,
+    columns: &[usize],
+) -> Result<JointTest, String> {
     if columns.is_empty() {
         return Err("every treatment indicator is aliased".to_string());
     }
     let q = columns.len();
     let block = DMatrix::from_fn(q, q, |i, j| covariance[(columns[i], columns[j])]);
     let values = nalgebra::DVector::from_iterator(q, columns.iter().map(|&column| beta[column]));
-    let cholesky = block.cholesky().ok_or_else(|| "the covariance of the treatment coefficients is singular".to_string())?;
+    let cholesky = block
+        .cholesky()
+        .ok_or_else(|| "the covariance of the treatment coefficients is singular".to_string())?;
     let statistic = values.dot(&cholesky.solve(&values));
-    let p_value = distributions::chi_square_upper_p(statistic, q as f64).ok_or_else(|| "the chi-square p-value could not be computed".to_string())?;
-    Ok(JointTest { statistic_name: "Wald chi-square", statistic, df1: q as f64, df2: None, p_value })
+    let p_value = distributions::chi_square_upper_p(statistic, q as f64)
+        .ok_or_else(|| "the chi-square p-value could not be computed".to_string())?;
+    Ok(JointTest {
+        statistic_name: "Wald chi-square",
+        statistic,
+        df1: q as f64,
+        df2: None,
+        p_value,
+    })
 }
 
 /// The likelihood-ratio test from the log-likelihoods of the full and reduced models.
@@ -276,26 +321,55 @@ pub(crate) fn likelihood_ratio(full: f64, reduced: f64, df: usize) -> Result<Joi
     if !statistic.is_finite() || df == 0 {
         return Err("the likelihood-ratio statistic could not be computed".to_string());
     }
-    let p_value = distributions::chi_square_upper_p(statistic, df as f64).ok_or_else(|| "the chi-square p-value could not be computed".to_string())?;
-    Ok(JointTest { statistic_name: "likelihood ratio", statistic, df1: df as f64, df2: None, p_value })
+    let p_value = distributions::chi_square_upper_p(statistic, df as f64)
+        .ok_or_else(|| "the chi-square p-value could not be computed".to_string())?;
+    Ok(JointTest {
+        statistic_name: "likelihood ratio",
+        statistic,
+        df1: df as f64,
+        df2: None,
+        p_value,
+    })
 }
 
 /// The design without the given columns (used for reduced models).
 pub(crate) fn drop_columns(matrix: &DMatrix<f64>, drop: &[usize]) -> DMatrix<f64> {
-    let kept: Vec<usize> = (0..matrix.ncols()).filter(|column| !drop.contains(column)).collect();
+    let kept: Vec<usize> = (0..matrix.ncols())
+        .filter(|column| !drop.contains(column))
+        .collect();
     matrix.select_columns(&kept)
 }
 
 /// A stop reason in words, for reports.
 pub(crate) fn describe_stop(reason: &crate::models::StopReason, column_names: &[String]) -> String {
     use crate::models::StopReason;
-    let names = |columns: &[usize]| columns.iter().map(|&column| column_names.get(column).cloned().unwrap_or_else(|| format!("column {column}"))).collect::<Vec<_>>().join(", ");
+    let names = |columns: &[usize]| {
+        columns
+            .iter()
+            .map(|&column| {
+                column_names
+                    .get(column)
+                    .cloned()
+                    .unwrap_or_else(|| format!("column {column}"))
+            })
+            .collect::<Vec<_>>()
+            .join(", ")
+    };
     match reason {
         StopReason::Converged { iterations } => format!("converged after {iterations} iterations"),
-        StopReason::IterationLimit { iterations } => format!("did not converge within {iterations} iterations"),
-        StopReason::Separation { columns } => format!("complete or quasi-complete separation on {}", names(columns)),
-        StopReason::SingularDesign { columns } => format!("singular design ({} aliased)", names(columns)),
-        StopReason::EmptyCategory { category } => format!("outcome category {} is empty", category + 1),
+        StopReason::IterationLimit { iterations } => {
+            format!("did not converge within {iterations} iterations")
+        }
+        StopReason::Separation { columns } => format!(
+            "complete or quasi-complete separation on {}",
+            names(columns)
+        ),
+        StopReason::SingularDesign { columns } => {
+            format!("singular design ({} aliased)", names(columns))
+        }
+        StopReason::EmptyCategory { category } => {
+            format!("outcome category {} is empty", category + 1)
+        }
         StopReason::NumericalFailure { detail } => format!("numerical failure: {detail}"),
     }
 }
@@ -319,7 +393,8 @@ pub(crate) fn with_interactions(design: &Design) -> (DMatrix<f64>, usize) {
     for &arm_column in &treatment {
         for &stratum_column in &strata {
             for row in 0..n {
-                extended[(row, next)] = design.matrix[(row, arm_column)] * design.matrix[(row, stratum_column)];
+                extended[(row, next)] =
+                    design.matrix[(row, arm_column)] * design.matrix[(row, stratum_column)];
             }
             next += 1;
         }
@@ -328,36 +403,76 @@ pub(crate) fn with_interactions(design: &Design) -> (DMatrix<f64>, usize) {
 }
 
 /// The verdict of the treatment-by-stratum check.
-pub(crate) fn heterogeneity_outcome(name: String, outcome: Result<JointTest, String>, level: f64) -> CheckOutcome {
+pub(crate) fn heterogeneity_outcome(
+    name: String,
+    outcome: Result<JointTest, String>,
+    level: f64,
+) -> CheckOutcome {
     match outcome {
         Ok(test) => {
             let failed = test.p_value < level;
             let verdict = if failed {
-                format!("the treatment effect appears to differ between strata (p = {:.4} < {level}); the planned model is still the primary result", test.p_value)
+                format!(
+                    "the treatment effect appears to differ between strata (p = {:.4} < {level}); the planned model is still the primary result",
+                    test.p_value
+                )
             } else {
-                format!("no evidence that the treatment effect differs between strata at level {level} (p = {:.4})", test.p_value)
+                format!(
+                    "no evidence that the treatment effect differs between strata at level {level} (p = {:.4})",
+                    test.p_value
+                )
             };
             CheckOutcome {
                 name,
-                rows: vec![CheckRow { term: "treatment × stratum".to_string(), statistic_name: test.statistic_name, statistic: test.statistic, df: test.df1, p_value: test.p_value }],
+                rows: vec![CheckRow {
+                    term: "treatment × stratum".to_string(),
+                    statistic_name: test.statistic_name,
+                    statistic: test.statistic,
+                    df: test.df1,
+                    p_value: test.p_value,
+                }],
                 failed,
                 verdict,
-                details: test.df2.map(|df2| vec![format!("denominator degrees of freedom {df2}")]).unwrap_or_default(),
+                details: test
+                    .df2
+                    .map(|df2| vec![format!("denominator degrees of freedom {df2}")])
+                    .unwrap_or_default(),
             }
         }
-        Err(reason) => CheckOutcome { name, rows: Vec::new(), failed: false, verdict: format!("could not be computed: {reason}"), details: Vec::new() },
+        Err(reason) => CheckOutcome {
+            name,
+            rows: Vec::new(),
+            failed: false,
+            verdict: format!("could not be computed: {reason}"),
+            details: Vec::new(),
+        },
     }
 }
 
 /// The joint Wald χ² test that every row of `weights` · θ is zero.
-pub(crate) fn joint_wald(weights: &[Vec<f64>], parameters: &[f64], covariance: &DMatrix<f64>) -> Option<JointTest> {
+pub(crate) fn joint_wald(
+    weights: &[Vec<f64>],
+    parameters: &[f64],
+    covariance: &DMatrix<f64>,
+) -> Option<JointTest> {
     let q = weights.len();
     if q == 0 {
         return None;
     }
-    let values = nalgebra::DVector::from_iterator(q, weights.iter().map(|row| row.iter().zip(parameters).map(|(w, b)| w * b).sum::<f64>()));
+    let values = nalgebra::DVector::from_iterator(
+        q,
+        weights
+            .iter()
+            .map(|row| row.iter().zip(parameters).map(|(w, b)| w * b).sum::<f64>()),
+    );
     let middle = DMatrix::from_fn(q, q, |i, j| bilinear(&weights[i], covariance, &weights[j]));
     let statistic = values.dot(&middle.cholesky()?.solve(&values));
     let p_value = distributions::chi_square_upper_p(statistic, q as f64)?;
-    Some(JointTest { statistic_name: "Wald chi-square", statistic, df1: q as f64, df2: None, p_value })
+    Some(JointTest {
+        statistic_name: "Wald chi-square",
+        statistic,
+        df1: q as f64,
+        df2: None,
+        p_value,
+    })
 }

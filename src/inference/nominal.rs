@@ -4,32 +4,59 @@
 //! exponentials per category, and overall Wald and likelihood-ratio tests of
 //! treatment across all categories.
 
-use super::{bilinear, contrast_vector, describe_stop, likelihood_ratio, wald_chi_square, wald_estimate, AnalysisInference, CoefficientRow, ContrastResult, FitStatistics};
+use super::{
+    AnalysisInference, CoefficientRow, ContrastResult, FitStatistics, bilinear, contrast_vector,
+    describe_stop, likelihood_ratio, wald_chi_square, wald_estimate,
+};
 use crate::design::Design;
-use crate::models::multinomial::{fit_multinomial_logit, MultinomialOptions};
 use crate::models::StopReason;
+use crate::models::multinomial::{MultinomialOptions, fit_multinomial_logit};
 use crate::plan::Analysis;
 
-pub fn analyse(design: &Design, analysis: &Analysis, reference_category: usize) -> Result<AnalysisInference, String> {
+pub fn analyse(
+    design: &Design,
+    analysis: &Analysis,
+    reference_category: usize,
+) -> Result<AnalysisInference, String> {
     let levels = &design.response_levels;
-    let response: Vec<usize> = design.response.iter().map(|&value| value as usize).collect();
+    let response: Vec<usize> = design
+        .response
+        .iter()
+        .map(|&value| value as usize)
+        .collect();
     let mut counts = vec![0usize; levels.len()];
     for &category in &response {
         counts[category] += 1;
     }
     if let Some(empty) = counts.iter().position(|&count| count == 0) {
-        return Err(format!("outcome category \"{}\" has no analysed subjects", levels[empty]));
+        return Err(format!(
+            "outcome category \"{}\" has no analysed subjects",
+            levels[empty]
+        ));
     }
     let options = MultinomialOptions::default();
-    let fit = fit_multinomial_logit(&design.matrix, &response, levels.len(), reference_category, None, &options).map_err(|error| error.to_string())?;
+    let fit = fit_multinomial_logit(
+        &design.matrix,
+        &response,
+        levels.len(),
+        reference_category,
+        None,
+        &options,
+    )
+    .map_err(|error| error.to_string())?;
     if !matches!(fit.stop_reason, StopReason::Converged { .. }) {
         return Err(describe_stop(&fit.stop_reason, &design.column_names));
     }
-    let covariance = fit.covariance.clone().ok_or_else(|| "the information matrix is not positive definite at the estimate".to_string())?;
+    let covariance = fit.covariance.clone().ok_or_else(|| {
+        "the information matrix is not positive definite at the estimate".to_string()
+    })?;
     let p = design.column_names.len();
     let confidence_level = analysis.confidence_level;
     // Parameters in category-major order: position · p + column.
-    let parameters: Vec<f64> = (0..fit.non_reference_categories.len()).flat_map(|position| (0..p).map(move |column| (position, column))).map(|(position, column)| fit.coefficients[(position, column)]).collect();
+    let parameters: Vec<f64> = (0..fit.non_reference_categories.len())
+        .flat_map(|position| (0..p).map(move |column| (position, column)))
+        .map(|(position, column)| fit.coefficients[(position, column)])
+        .collect();
 
     let mut coefficients = Vec::new();
     for (position, &category) in fit.non_reference_categories.iter().enumerate() {
@@ -39,13 +66,21 @@ pub fn analyse(design: &Design, analysis: &Analysis, reference_category: usize) 
                 name: design.column_names[column].clone(),
                 term: design.terms[design.column_terms[column]].name.clone(),
                 category: Some(levels[category].clone()),
-                estimate: wald_estimate(parameters[index], covariance[(index, index)].sqrt(), None, confidence_level).ok(),
+                estimate: wald_estimate(
+                    parameters[index],
+                    covariance[(index, index)].sqrt(),
+                    None,
+                    confidence_level,
+                )
+                .ok(),
             });
         }
     }
 
     let treatment: Vec<usize> = design.treatment_columns.iter().flatten().copied().collect();
-    let treatment_parameters: Vec<usize> = (0..fit.non_reference_categories.len()).flat_map(|position| treatment.iter().map(move |column| position * p + column)).collect();
+    let treatment_parameters: Vec<usize> = (0..fit.non_reference_categories.len())
+        .flat_map(|position| treatment.iter().map(move |column| position * p + column))
+        .collect();
     let mut treatment_tests = Vec::new();
     let mut failures = Vec::new();
     match wald_chi_square(&parameters, &covariance, &treatment_parameters) {
@@ -53,13 +88,29 @@ pub fn analyse(design: &Design, analysis: &Analysis, reference_category: usize) 
         Err(reason) => failures.push(reason),
     }
     let reduced_design = super::drop_columns(&design.matrix, &treatment);
-    match fit_multinomial_logit(&reduced_design, &response, levels.len(), reference_category, None, &options) {
-        Ok(reduced) => match (reduced.log_likelihood, fit.log_likelihood, &reduced.stop_reason) {
-            (Some(reduced_log_likelihood), Some(full), StopReason::Converged { .. }) => match likelihood_ratio(full, reduced_log_likelihood, treatment_parameters.len()) {
-                Ok(test) => treatment_tests.push(test),
-                Err(reason) => failures.push(reason),
-            },
-            (_, _, reason) => failures.push(format!("likelihood-ratio test: the model without treatment {}", describe_stop(reason, &[]))),
+    match fit_multinomial_logit(
+        &reduced_design,
+        &response,
+        levels.len(),
+        reference_category,
+        None,
+        &options,
+    ) {
+        Ok(reduced) => match (
+            reduced.log_likelihood,
+            fit.log_likelihood,
+            &reduced.stop_reason,
+        ) {
+            (Some(reduced_log_likelihood), Some(full), StopReason::Converged { .. }) => {
+                match likelihood_ratio(full, reduced_log_likelihood, treatment_parameters.len()) {
+                    Ok(test) => treatment_tests.push(test),
+                    Err(reason) => failures.push(reason),
+                }
+            }
+            (_, _, reason) => failures.push(format!(
+                "likelihood-ratio test: the model without treatment {}",
+                describe_stop(reason, &[])
+            )),
         },
         Err(error) => failures.push(format!("likelihood-ratio test: {error}")),
     }
@@ -68,27 +119,35 @@ pub fn analyse(design: &Design, analysis: &Analysis, reference_category: usize) 
     let mut contrasts = Vec::new();
     for contrast in &analysis.contrasts {
         // The contrast across all categories at once, for a hypothesis about it.
-        let joint = contrast_vector(design, &no_alias, contrast.arm, contrast.versus).ok().and_then(|by_column| {
-            let rows: Vec<Vec<f64>> = (0..fit.non_reference_categories.len())
-                .map(|position| {
+        let joint = contrast_vector(design, &no_alias, contrast.arm, contrast.versus)
+            .ok()
+            .and_then(|by_column| {
+                let rows: Vec<Vec<f64>> = (0..fit.non_reference_categories.len())
+                    .map(|position| {
+                        let mut weights = vec![0.0; parameters.len()];
+                        for (column, weight) in by_column.iter().enumerate() {
+                            weights[position * p + column] = *weight;
+                        }
+                        weights
+                    })
+                    .collect();
+                super::joint_wald(&rows, &parameters, &covariance)
+            });
+        for (position, &category) in fit.non_reference_categories.iter().enumerate() {
+            let estimate = contrast_vector(design, &no_alias, contrast.arm, contrast.versus)
+                .and_then(|weights_by_column| {
                     let mut weights = vec![0.0; parameters.len()];
-                    for (column, weight) in by_column.iter().enumerate() {
+                    for (column, weight) in weights_by_column.iter().enumerate() {
                         weights[position * p + column] = *weight;
                     }
-                    weights
-                })
-                .collect();
-            super::joint_wald(&rows, &parameters, &covariance)
-        });
-        for (position, &category) in fit.non_reference_categories.iter().enumerate() {
-            let estimate = contrast_vector(design, &no_alias, contrast.arm, contrast.versus).and_then(|weights_by_column| {
-                let mut weights = vec![0.0; parameters.len()];
-                for (column, weight) in weights_by_column.iter().enumerate() {
-                    weights[position * p + column] = *weight;
-                }
-                let value: f64 = weights.iter().zip(&parameters).map(|(w, b)| w * b).sum();
-                wald_estimate(value, bilinear(&weights, &covariance, &weights).sqrt(), None, confidence_level)
-            });
+                    let value: f64 = weights.iter().zip(&parameters).map(|(w, b)| w * b).sum();
+                    wald_estimate(
+                        value,
+                        bilinear(&weights, &covariance, &weights).sqrt(),
+                        None,
+                        confidence_level,
+                    )
+                });
             let ratio = estimate.as_ref().ok().and_then(super::exponentiate);
             contrasts.push(ContrastResult {
                 id: contrast.id.clone(),
@@ -102,8 +161,18 @@ pub fn analyse(design: &Design, analysis: &Analysis, reference_category: usize) 
             });
         }
     }
-    let checks = if analysis.checks.contains(&crate::plan::Check::TreatmentByStratum) {
-        vec![heterogeneity(design, &response, levels.len(), reference_category, fit.log_likelihood, analysis.check_level)]
+    let checks = if analysis
+        .checks
+        .contains(&crate::plan::Check::TreatmentByStratum)
+    {
+        vec![heterogeneity(
+            design,
+            &response,
+            levels.len(),
+            reference_category,
+            fit.log_likelihood,
+            analysis.check_level,
+        )]
     } else {
         Vec::new()
     };
@@ -143,19 +212,46 @@ pub fn analyse(design: &Design, analysis: &Analysis, reference_category: usize) 
 
 /// Treatment-by-stratum interaction added to the planned model, tested by
 /// likelihood ratio over all non-reference categories; supportive only.
-fn heterogeneity(design: &Design, response: &[usize], n_categories: usize, reference_category: usize, log_likelihood: Option<f64>, level: f64) -> super::CheckOutcome {
+fn heterogeneity(
+    design: &Design,
+    response: &[usize],
+    n_categories: usize,
+    reference_category: usize,
+    log_likelihood: Option<f64>,
+    level: f64,
+) -> super::CheckOutcome {
     let name = "Treatment-by-stratum interaction (supportive)".to_string();
     let (extended, added) = super::with_interactions(design);
     let outcome = if added == 0 {
         Err("no interaction columns could be formed".to_string())
     } else {
-        fit_multinomial_logit(&extended, response, n_categories, reference_category, None, &MultinomialOptions::default()).map_err(|error| error.to_string()).and_then(|bigger| {
+        fit_multinomial_logit(
+            &extended,
+            response,
+            n_categories,
+            reference_category,
+            None,
+            &MultinomialOptions::default(),
+        )
+        .map_err(|error| error.to_string())
+        .and_then(|bigger| {
             match (bigger.log_likelihood, log_likelihood, &bigger.stop_reason) {
-                (Some(bigger_log_likelihood), Some(log_likelihood), StopReason::Converged { .. }) => likelihood_ratio(bigger_log_likelihood, log_likelihood, added * (n_categories - 1)),
-                (_, _, reason) => Err(format!("the interaction model {}", describe_stop(reason, &[]))),
+                (
+                    Some(bigger_log_likelihood),
+                    Some(log_likelihood),
+                    StopReason::Converged { .. },
+                ) => likelihood_ratio(
+                    bigger_log_likelihood,
+                    log_likelihood,
+                    added * (n_categories - 1),
+                ),
+                (_, _, reason) => Err(format!(
+                    "the interaction model {}",
+                    describe_stop(reason, &[])
+                )),
             }
         })
     };
-    
+
     super::heterogeneity_outcome(name, outcome, level)
 }

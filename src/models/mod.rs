@@ -5,8 +5,8 @@
 pub mod glm;
 pub mod linear;
 pub mod multinomial;
-pub mod portable;
 pub mod ordinal;
+pub mod portable;
 
 /// Why an iterative (or direct) fit stopped. Carried into results and the
 /// report; a fit never panics and never reports NaN in place of a reason.

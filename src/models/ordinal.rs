@@ -12,7 +12,7 @@
 //! Model and sign convention (fixed for every report): for category index `j = 0..J-2`,
 //! `g(P(Y <= j | x)) = theta_j - x'beta`, so `beta > 0` moves subjects toward higher
 //! categories and, for the logit link, `exp(beta)` is the common odds ratio of being in a higher
-//! category. This is the parametrisation of `MASS::polr` and `ordinal::clm` (zeta_j - eta).
+//! category. This is the parametrisation of R's MASS and ordinal packages (zeta_j - eta).
 //!
 //! Parameter order everywhere (estimates, gradient, covariance): the `J-1` cut-points first, then
 //! for the nominal-effects fit the per-cut-point effects of the nominal columns (cut-point 0's
@@ -324,8 +324,8 @@ pub struct NominalEffectsFit {
 /// Method: starting values `theta_j = g(cumulative marginal proportion)`, `beta = 0`; each
 /// iteration solves the Newton system with the observed information, then halves the step until
 /// the cut-points stay strictly ordered and the log-likelihood does not decrease. Standard
-/// errors come from the inverse observed information at the estimate, as `ordinal::clm` and
-/// `MASS::polr` report them. Convergence needs both criteria of [`CumulativeLinkOptions`].
+/// errors come from the inverse observed information at the estimate, as R's ordinal and MASS
+/// packages report them. Convergence needs both criteria of [`CumulativeLinkOptions`].
 ///
 /// Separation (the likelihood's supremum is approached as a coefficient grows without bound) is
 /// recognised after the iterations stop: a coefficient is flagged when its effect across its

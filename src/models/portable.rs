@@ -51,7 +51,9 @@ mod tests {
     fn portable_functions_agree_with_the_platform_to_an_ulp() {
         // Common practice: both are faithful to about 1 ulp, so they agree to a few ulps.
         for x in [-30.0, -1.5, -1e-8, 0.0, 1e-8, 0.3, 1.0, 2.5, 40.0] {
-            let close = |a: f64, b: f64| (a - b).abs() <= 4.0 * f64::EPSILON * a.abs().max(b.abs()).max(f64::MIN_POSITIVE);
+            let close = |a: f64, b: f64| {
+                (a - b).abs() <= 4.0 * f64::EPSILON * a.abs().max(b.abs()).max(f64::MIN_POSITIVE)
+            };
             assert!(close(x.pexp(), x.exp()));
             assert!(close(x.pexp_m1(), x.exp_m1()));
             if x > 0.0 {

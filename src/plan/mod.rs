@@ -309,7 +309,9 @@ pub enum ModelSpec {
     /// A generalised linear model fitted by IRLS.
     Generalized(GlmSpec),
     /// A cumulative link model for an ordinal endpoint: g(P(Y ≤ j)) = θⱼ − xᵀβ.
-    Cumulative { link: crate::models::ordinal::CumulativeLink },
+    Cumulative {
+        link: crate::models::ordinal::CumulativeLink,
+    },
     /// Baseline-category logit for a nominal endpoint; `reference_category` indexes the endpoint's levels.
     Multinomial { reference_category: usize },
 }
@@ -472,7 +474,12 @@ impl LoadedPlan {
 fn resolve_inside(folder: &Path, relative: &str, plan_file: &str) -> Result<PathBuf, Error> {
     let candidate = Path::new(relative);
     let escapes = candidate.is_absolute()
-        || candidate.components().any(|component| !matches!(component, std::path::Component::Normal(_) | std::path::Component::CurDir));
+        || candidate.components().any(|component| {
+            !matches!(
+                component,
+                std::path::Component::Normal(_) | std::path::Component::CurDir
+            )
+        });
     if escapes {
         return Err(Error::one(
             Problem::new(
@@ -487,18 +494,31 @@ fn resolve_inside(folder: &Path, relative: &str, plan_file: &str) -> Result<Path
 
 /// Read and validate a plan file.
 pub fn load(path: &Path) -> Result<LoadedPlan, Error> {
-    let file_name = path.file_name().map(|name| name.to_string_lossy().into_owned()).unwrap_or_else(|| path.display().to_string());
+    let file_name = path
+        .file_name()
+        .map(|name| name.to_string_lossy().into_owned())
+        .unwrap_or_else(|| path.display().to_string());
     // Refuse an oversized file before reading it into memory.
     if let Ok(metadata) = std::fs::metadata(path)
         && metadata.len() > limits::MAX_PLAN_BYTES as u64
     {
         return Err(plan_too_large(metadata.len(), &file_name));
     }
-    let bytes = std::fs::read(path).map_err(|cause| Error::io(&path.display().to_string(), "read the plan", &cause))?;
+    let bytes = std::fs::read(path)
+        .map_err(|cause| Error::io(&path.display().to_string(), "read the plan", &cause))?;
     let plan = parse(&bytes, &file_name)?;
     let folder = path.parent().map(Path::to_path_buf).unwrap_or_default();
-    let folder = if folder.as_os_str().is_empty() { PathBuf::from(".") } else { folder };
-    Ok(LoadedPlan { plan, bytes, file_name, folder })
+    let folder = if folder.as_os_str().is_empty() {
+        PathBuf::from(".")
+    } else {
+        folder
+    };
+    Ok(LoadedPlan {
+        plan,
+        bytes,
+        file_name,
+        folder,
+    })
 }
 
 /// Validate plan bytes; `file` names the file in errors.
@@ -513,7 +533,13 @@ pub fn parse(bytes: &[u8], file: &str) -> Result<Plan, Error> {
 
 fn plan_too_large(bytes: u64, file: &str) -> Error {
     Error::one(
-        Problem::new(ErrorKind::Limit, format!("the plan file has {bytes} bytes; cairn reads plans of at most {} bytes", limits::MAX_PLAN_BYTES))
-            .at(Location::file(file)),
+        Problem::new(
+            ErrorKind::Limit,
+            format!(
+                "the plan file has {bytes} bytes; cairn reads plans of at most {} bytes",
+                limits::MAX_PLAN_BYTES
+            ),
+        )
+        .at(Location::file(file)),
     )
 }

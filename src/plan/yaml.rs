@@ -39,7 +39,10 @@ pub struct Node {
 pub enum NodeValue {
     /// A scalar: its text and whether it was quoted or a block scalar
     /// (quoted scalars are always text, never numbers or booleans).
-    Scalar { text: String, quoted: bool },
+    Scalar {
+        text: String,
+        quoted: bool,
+    },
     Sequence(Vec<Node>),
     /// Key–value pairs in file order; keys are scalars (checked on reading).
     Mapping(Vec<(Node, Node)>),
@@ -92,11 +95,26 @@ fn shorten(text: &str) -> String {
 pub fn parse(text: &str, file: &str) -> Result<Node, Error> {
     if let Some((line, column)) = find_tab_indentation(text) {
         return Err(Error::one(
-            Problem::new(ErrorKind::PlanSyntax, "a tab is used for indentation; YAML allows only spaces")
-                .at(Location { file: file.to_string(), line: Some(line), column: Some(column), path: None }),
+            Problem::new(
+                ErrorKind::PlanSyntax,
+                "a tab is used for indentation; YAML allows only spaces",
+            )
+            .at(Location {
+                file: file.to_string(),
+                line: Some(line),
+                column: Some(column),
+                path: None,
+            }),
         ));
     }
-    let mut builder = TreeBuilder { file: file.to_string(), stack: Vec::new(), root: None, problems: Vec::new(), documents: 0, stopped: false };
+    let mut builder = TreeBuilder {
+        file: file.to_string(),
+        stack: Vec::new(),
+        root: None,
+        problems: Vec::new(),
+        documents: 0,
+        stopped: false,
+    };
     let mut parser = Parser::new_from_str(text);
     // The events are pulled one by one here rather than through `Parser::load`,
     // which recurses once per nesting level and so overflows the stack on a few
@@ -117,7 +135,9 @@ pub fn parse(text: &str, file: &str) -> Result<Node, Error> {
     if builder.stopped {
         // A limit was passed; it comes first in the file, before any later
         // syntax error (such as the parser's own, deeper, recursion limit).
-        return Err(Error { problems: builder.problems });
+        return Err(Error {
+            problems: builder.problems,
+        });
     }
     if let Err(scan_error) = loaded {
         let marker = scan_error.marker();
@@ -129,20 +149,33 @@ pub fn parse(text: &str, file: &str) -> Result<Node, Error> {
             return Err(Error::one(nesting_limit().at(location_of(file, marker))));
         }
         return Err(Error::one(
-            Problem::new(ErrorKind::PlanSyntax, format!("malformed YAML: {}", scan_error.info()))
-                .at(location_of(file, marker)),
+            Problem::new(
+                ErrorKind::PlanSyntax,
+                format!("malformed YAML: {}", scan_error.info()),
+            )
+            .at(location_of(file, marker)),
         ));
     }
     if !builder.problems.is_empty() {
-        return Err(Error { problems: builder.problems });
+        return Err(Error {
+            problems: builder.problems,
+        });
     }
     builder.root.ok_or_else(|| {
-        Error::one(Problem::new(ErrorKind::PlanSyntax, "the file is empty; expected a plan").at(Location::file(file)))
+        Error::one(
+            Problem::new(ErrorKind::PlanSyntax, "the file is empty; expected a plan")
+                .at(Location::file(file)),
+        )
     })
 }
 
 fn nesting_limit() -> Problem {
-    Problem::new(ErrorKind::Limit, format!("lists and mappings are nested more than {MAX_NESTING} levels deep; a plan may nest at most {MAX_NESTING}"))
+    Problem::new(
+        ErrorKind::Limit,
+        format!(
+            "lists and mappings are nested more than {MAX_NESTING} levels deep; a plan may nest at most {MAX_NESTING}"
+        ),
+    )
 }
 
 /// The first line whose indentation contains a tab, as (line, column).
@@ -160,14 +193,27 @@ fn find_tab_indentation(text: &str) -> Option<(usize, usize)> {
 }
 
 fn location_of(file: &str, marker: &Marker) -> Location {
-    Location { file: file.to_string(), line: Some(marker.line()), column: Some(marker.col() + 1), path: None }
+    Location {
+        file: file.to_string(),
+        line: Some(marker.line()),
+        column: Some(marker.col() + 1),
+        path: None,
+    }
 }
 
 enum Open {
-    Sequence { start: Marker, items: Vec<Node> },
+    Sequence {
+        start: Marker,
+        items: Vec<Node>,
+    },
     /// `first_line` maps each scalar key's text to the line where it first
     /// appears, so that a repeated key is found without scanning every earlier one.
-    Mapping { start: Marker, pairs: Vec<(Node, Node)>, pending_key: Option<Node>, first_line: BTreeMap<String, usize> },
+    Mapping {
+        start: Marker,
+        pairs: Vec<(Node, Node)>,
+        pending_key: Option<Node>,
+        first_line: BTreeMap<String, usize>,
+    },
 }
 
 struct TreeBuilder {
@@ -183,13 +229,19 @@ struct TreeBuilder {
 
 impl TreeBuilder {
     fn problem(&mut self, marker: Marker, message: String) {
-        self.problems.push(Problem::new(ErrorKind::PlanSyntax, message).at(location_of(&self.file, &marker)));
+        self.problems.push(
+            Problem::new(ErrorKind::PlanSyntax, message).at(location_of(&self.file, &marker)),
+        );
     }
 
     fn finish(&mut self, node: Node) {
         let entries = match self.stack.last() {
             Some(Open::Sequence { items, .. }) => items.len(),
-            Some(Open::Mapping { pairs, pending_key: None, .. }) => pairs.len(),
+            Some(Open::Mapping {
+                pairs,
+                pending_key: None,
+                ..
+            }) => pairs.len(),
             _ => 0,
         };
         if entries >= MAX_ENTRIES {
@@ -204,7 +256,12 @@ impl TreeBuilder {
         match self.stack.last_mut() {
             None => self.root = Some(node),
             Some(Open::Sequence { items, .. }) => items.push(node),
-            Some(Open::Mapping { pairs, pending_key, first_line, .. }) => match pending_key.take() {
+            Some(Open::Mapping {
+                pairs,
+                pending_key,
+                first_line,
+                ..
+            }) => match pending_key.take() {
                 None => *pending_key = Some(node),
                 Some(key) => {
                     let duplicate = match &key.value {
@@ -239,52 +296,97 @@ impl MarkedEventReceiver for TreeBuilder {
         if self.stopped {
             return;
         }
-        if matches!(event, Event::SequenceStart(..) | Event::MappingStart(..)) && self.stack.len() >= MAX_NESTING {
+        if matches!(event, Event::SequenceStart(..) | Event::MappingStart(..))
+            && self.stack.len() >= MAX_NESTING
+        {
             self.stopped = true;
-            self.problems.push(nesting_limit().at(location_of(&self.file, &marker)));
+            self.problems
+                .push(nesting_limit().at(location_of(&self.file, &marker)));
             return;
         }
         match event {
             Event::DocumentStart => {
                 self.documents += 1;
                 if self.documents > 1 {
-                    self.problem(marker, "a plan is one YAML document; found a second one".to_string());
+                    self.problem(
+                        marker,
+                        "a plan is one YAML document; found a second one".to_string(),
+                    );
                 }
             }
             Event::Alias(_) => {
-                self.problem(marker, "aliases (*name) are not allowed in a plan; write the value out".to_string());
-                self.finish(Node { line: marker.line(), column: marker.col() + 1, value: NodeValue::Scalar { text: String::new(), quoted: true } });
+                self.problem(
+                    marker,
+                    "aliases (*name) are not allowed in a plan; write the value out".to_string(),
+                );
+                self.finish(Node {
+                    line: marker.line(),
+                    column: marker.col() + 1,
+                    value: NodeValue::Scalar {
+                        text: String::new(),
+                        quoted: true,
+                    },
+                });
             }
             Event::Scalar(text, style, anchor, tag) => {
                 if anchor != 0 {
-                    self.problem(marker, "anchors (&name) are not allowed in a plan".to_string());
+                    self.problem(
+                        marker,
+                        "anchors (&name) are not allowed in a plan".to_string(),
+                    );
                 }
                 if tag.is_some() {
                     self.problem(marker, "tags (!name) are not allowed in a plan".to_string());
                 }
                 let quoted = !matches!(style, TScalarStyle::Plain);
-                self.finish(Node { line: marker.line(), column: marker.col() + 1, value: NodeValue::Scalar { text, quoted } });
+                self.finish(Node {
+                    line: marker.line(),
+                    column: marker.col() + 1,
+                    value: NodeValue::Scalar { text, quoted },
+                });
             }
             Event::SequenceStart(anchor, tag) => {
                 if anchor != 0 || tag.is_some() {
-                    self.problem(marker, "anchors and tags are not allowed in a plan".to_string());
+                    self.problem(
+                        marker,
+                        "anchors and tags are not allowed in a plan".to_string(),
+                    );
                 }
-                self.stack.push(Open::Sequence { start: marker, items: Vec::new() });
+                self.stack.push(Open::Sequence {
+                    start: marker,
+                    items: Vec::new(),
+                });
             }
             Event::MappingStart(anchor, tag) => {
                 if anchor != 0 || tag.is_some() {
-                    self.problem(marker, "anchors and tags are not allowed in a plan".to_string());
+                    self.problem(
+                        marker,
+                        "anchors and tags are not allowed in a plan".to_string(),
+                    );
                 }
-                self.stack.push(Open::Mapping { start: marker, pairs: Vec::new(), pending_key: None, first_line: BTreeMap::new() });
+                self.stack.push(Open::Mapping {
+                    start: marker,
+                    pairs: Vec::new(),
+                    pending_key: None,
+                    first_line: BTreeMap::new(),
+                });
             }
             Event::SequenceEnd => {
                 if let Some(Open::Sequence { start, items }) = self.stack.pop() {
-                    self.finish(Node { line: start.line(), column: start.col() + 1, value: NodeValue::Sequence(items) });
+                    self.finish(Node {
+                        line: start.line(),
+                        column: start.col() + 1,
+                        value: NodeValue::Sequence(items),
+                    });
                 }
             }
             Event::MappingEnd => {
                 if let Some(Open::Mapping { start, pairs, .. }) = self.stack.pop() {
-                    self.finish(Node { line: start.line(), column: start.col() + 1, value: NodeValue::Mapping(pairs) });
+                    self.finish(Node {
+                        line: start.line(),
+                        column: start.col() + 1,
+                        value: NodeValue::Mapping(pairs),
+                    });
                 }
             }
             Event::Nothing | Event::StreamStart | Event::StreamEnd | Event::DocumentEnd => {}
@@ -299,10 +401,14 @@ mod tests {
     #[test]
     fn positions_are_one_based_line_and_column() {
         let root = parse("a: 1\nb:\n  c: \"x\"\n", "p.yaml").expect("parses");
-        let NodeValue::Mapping(pairs) = &root.value else { panic!("mapping expected") };
+        let NodeValue::Mapping(pairs) = &root.value else {
+            panic!("mapping expected")
+        };
         let (key_b, value_b) = &pairs[1];
         assert_eq!((key_b.line, key_b.column), (2, 1));
-        let NodeValue::Mapping(inner) = &value_b.value else { panic!("mapping expected") };
+        let NodeValue::Mapping(inner) = &value_b.value else {
+            panic!("mapping expected")
+        };
         assert_eq!((inner[0].1.line, inner[0].1.column), (3, 6));
         assert_eq!(inner[0].1.as_scalar(), Some(("x", true)));
     }
@@ -327,7 +433,11 @@ mod tests {
     fn nesting_beyond_the_limit_is_a_located_limit_error() {
         let within = format!("{}{}", "[".repeat(MAX_NESTING), "]".repeat(MAX_NESTING));
         assert!(parse(&within, "p.yaml").is_ok());
-        let beyond = format!("a:\n  b: {}{}\n", "[".repeat(MAX_NESTING + 1), "]".repeat(MAX_NESTING + 1));
+        let beyond = format!(
+            "a:\n  b: {}{}\n",
+            "[".repeat(MAX_NESTING + 1),
+            "]".repeat(MAX_NESTING + 1)
+        );
         let error = parse(&beyond, "p.yaml").unwrap_err();
         assert_eq!(error.kind(), ErrorKind::Limit);
         let location = error.problems[0].location.clone().expect("located");
@@ -336,12 +446,21 @@ mod tests {
 
     #[test]
     fn lists_beyond_the_entry_limit_are_a_located_limit_error() {
-        let items = |count: usize| (0..count).map(|index| format!("L{index}")).collect::<Vec<_>>().join(", ");
+        let items = |count: usize| {
+            (0..count)
+                .map(|index| format!("L{index}"))
+                .collect::<Vec<_>>()
+                .join(", ")
+        };
         assert!(parse(&format!("levels: [{}]\n", items(MAX_ENTRIES)), "p.yaml").is_ok());
-        let error = parse(&format!("levels: [{}]\n", items(MAX_ENTRIES + 1)), "p.yaml").unwrap_err();
+        let error =
+            parse(&format!("levels: [{}]\n", items(MAX_ENTRIES + 1)), "p.yaml").unwrap_err();
         assert_eq!(error.kind(), ErrorKind::Limit);
         assert_eq!(error.problems.len(), 1);
-        let keys = (0..=MAX_ENTRIES).map(|index| format!("k{index}: 1")).collect::<Vec<_>>().join("\n");
+        let keys = (0..=MAX_ENTRIES)
+            .map(|index| format!("k{index}: 1"))
+            .collect::<Vec<_>>()
+            .join("\n");
         assert_eq!(parse(&keys, "p.yaml").unwrap_err().kind(), ErrorKind::Limit);
     }
 
@@ -349,6 +468,12 @@ mod tests {
     fn malformed_yaml_is_a_located_syntax_error() {
         let error = parse("a: [1, 2\nb: 3\n", "p.yaml").unwrap_err();
         assert_eq!(error.kind(), ErrorKind::PlanSyntax);
-        assert!(error.problems[0].location.as_ref().and_then(|l| l.line).is_some());
+        assert!(
+            error.problems[0]
+                .location
+                .as_ref()
+                .and_then(|l| l.line)
+                .is_some()
+        );
     }
 }

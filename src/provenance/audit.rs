@@ -30,14 +30,20 @@ pub struct AuditEntry {
 
 /// `plan.yaml` → `plan.audit.log`.
 pub fn log_path(plan_path: &Path) -> PathBuf {
-    let stem = plan_path.file_stem().map(|stem| stem.to_string_lossy().into_owned()).unwrap_or_else(|| "plan".to_string());
+    let stem = plan_path
+        .file_stem()
+        .map(|stem| stem.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "plan".to_string());
     plan_path.with_file_name(format!("{stem}.audit.log"))
 }
 
 /// Read and check the whole log; an empty list when there is none.
 pub fn read(plan_path: &Path) -> Result<Vec<AuditEntry>, Error> {
     let path = log_path(plan_path);
-    let file_name = path.file_name().map(|name| name.to_string_lossy().into_owned()).unwrap_or_default();
+    let file_name = path
+        .file_name()
+        .map(|name| name.to_string_lossy().into_owned())
+        .unwrap_or_default();
     let bytes = match std::fs::read(&path) {
         Ok(bytes) => bytes,
         Err(cause) if cause.kind() == std::io::ErrorKind::NotFound => return Ok(Vec::new()),
@@ -48,15 +54,26 @@ pub fn read(plan_path: &Path) -> Result<Vec<AuditEntry>, Error> {
     let mut previous: Option<&str> = None;
     for (index, line) in text.lines().enumerate() {
         let located = |message: String| {
-            Error::one(Problem::new(ErrorKind::LockRecord, message).at(Location { file: file_name.clone(), line: Some(index + 1), column: None, path: None }))
+            Error::one(Problem::new(ErrorKind::LockRecord, message).at(Location {
+                file: file_name.clone(),
+                line: Some(index + 1),
+                column: None,
+                path: None,
+            }))
         };
-        let entry: AuditEntry = serde_json::from_str(line).map_err(|cause| located(format!("this audit line is malformed ({cause}); it was edited by hand")))?;
+        let entry: AuditEntry = serde_json::from_str(line).map_err(|cause| {
+            located(format!(
+                "this audit line is malformed ({cause}); it was edited by hand"
+            ))
+        })?;
         let expected = previous.map(|line| sha256_hex(line.as_bytes()));
         if entry.previous_line_sha256 != expected {
             return Err(located(if index == 0 {
                 "the first line points to a previous line: lines were removed from the start of the log".to_string()
             } else {
-                format!("the chain breaks here: this line does not carry the hash of line {index}, which was edited or removed")
+                format!(
+                    "the chain breaks here: this line does not carry the hash of line {index}, which was edited or removed"
+                )
             }));
         }
         entries.push(entry);
@@ -72,10 +89,17 @@ pub fn append(plan_path: &Path, mut entry: AuditEntry) -> Result<(), Error> {
     let existing = std::fs::read(&path).unwrap_or_default();
     let text = String::from_utf8_lossy(&existing);
     entry.previous_line_sha256 = text.lines().last().map(|line| sha256_hex(line.as_bytes()));
-    let line = serde_json::to_string(&entry).map_err(|cause| Error::internal(format!("cannot serialise an audit line: {cause}")))?;
-    let mut file = std::fs::OpenOptions::new().create(true).append(true).open(&path).map_err(|cause| Error::io(&shown, "open the audit log", &cause))?;
+    let line = serde_json::to_string(&entry)
+        .map_err(|cause| Error::internal(format!("cannot serialise an audit line: {cause}")))?;
+    let mut file = std::fs::OpenOptions::new()
+        .create(true)
+        .append(true)
+        .open(&path)
+        .map_err(|cause| Error::io(&shown, "open the audit log", &cause))?;
     if !existing.is_empty() && !existing.ends_with(b"\n") {
-        file.write_all(b"\n").map_err(|cause| Error::io(&shown, "append to the audit log", &cause))?;
+        file.write_all(b"\n")
+            .map_err(|cause| Error::io(&shown, "append to the audit log", &cause))?;
     }
-    file.write_all(format!("{line}\n").as_bytes()).map_err(|cause| Error::io(&shown, "append to the audit log", &cause))
+    file.write_all(format!("{line}\n").as_bytes())
+        .map_err(|cause| Error::io(&shown, "append to the audit log", &cause))
 }

@@ -22,7 +22,10 @@ pub struct DryRunRecord {
 
 /// `plan.yaml` → `plan.dry-run.yaml`.
 pub fn record_path(plan_path: &Path) -> PathBuf {
-    let stem = plan_path.file_stem().map(|stem| stem.to_string_lossy().into_owned()).unwrap_or_else(|| "plan".to_string());
+    let stem = plan_path
+        .file_stem()
+        .map(|stem| stem.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "plan".to_string());
     plan_path.with_file_name(format!("{stem}.dry-run.yaml"))
 }
 
@@ -36,7 +39,10 @@ pub struct LoadedDryRun {
 
 pub fn read(plan_path: &Path) -> Result<Option<LoadedDryRun>, Error> {
     let path = record_path(plan_path);
-    let file_name = path.file_name().map(|name| name.to_string_lossy().into_owned()).unwrap_or_default();
+    let file_name = path
+        .file_name()
+        .map(|name| name.to_string_lossy().into_owned())
+        .unwrap_or_default();
     let bytes = match std::fs::read(&path) {
         Ok(bytes) => bytes,
         Err(cause) if cause.kind() == std::io::ErrorKind::NotFound => return Ok(None),
@@ -44,13 +50,29 @@ pub fn read(plan_path: &Path) -> Result<Option<LoadedDryRun>, Error> {
     };
     let text = crate::data::decode_utf8(&bytes, &file_name)?;
     let record: DryRunRecord = serde_yaml::from_str(text).map_err(|cause| {
-        Error::one(Problem::new(ErrorKind::LockRecord, format!("the dry-run record is malformed: {cause}")).at(Location::file(file_name.clone())))
+        Error::one(
+            Problem::new(
+                ErrorKind::LockRecord,
+                format!("the dry-run record is malformed: {cause}"),
+            )
+            .at(Location::file(file_name.clone())),
+        )
     })?;
-    Ok(Some(LoadedDryRun { file_name, bytes, record }))
+    Ok(Some(LoadedDryRun {
+        file_name,
+        bytes,
+        record,
+    }))
 }
 
 /// Write the record for a dry run of `plan_bytes` on `subjects_bytes`.
-pub fn write(plan_path: &Path, plan_bytes: &[u8], subjects_file: &str, subjects_bytes: &[u8], seed: u64) -> Result<(), Error> {
+pub fn write(
+    plan_path: &Path,
+    plan_bytes: &[u8],
+    subjects_file: &str,
+    subjects_bytes: &[u8],
+    seed: u64,
+) -> Result<(), Error> {
     let record = DryRunRecord {
         cairn_dry_run: 1,
         seed,
@@ -59,6 +81,8 @@ pub fn write(plan_path: &Path, plan_bytes: &[u8], subjects_file: &str, subjects_
         subjects_sha256: sha256_hex(subjects_bytes),
         tool_version: super::TOOL_VERSION.to_string(),
     };
-    let text = serde_yaml::to_string(&record).map_err(|cause| Error::internal(format!("cannot serialise the dry-run record: {cause}")))?;
+    let text = serde_yaml::to_string(&record).map_err(|cause| {
+        Error::internal(format!("cannot serialise the dry-run record: {cause}"))
+    })?;
     crate::output::write_atomically(&record_path(plan_path), text.as_bytes())
 }

@@ -13,12 +13,17 @@ use std::path::Path;
 /// The history as text, ready to print.
 pub fn history(plan_path: &Path) -> Result<String, Error> {
     let mut text = String::new();
-    let plan_bytes = std::fs::read(plan_path).map_err(|cause| Error::io(&plan_path.display().to_string(), "read the plan", &cause))?;
+    let plan_bytes = std::fs::read(plan_path)
+        .map_err(|cause| Error::io(&plan_path.display().to_string(), "read the plan", &cause))?;
     let plan_text = String::from_utf8_lossy(&plan_bytes).into_owned();
     match lock::read(plan_path)? {
         None => text.push_str("no lock record: the plan has never been locked\n"),
         Some(loaded) => {
-            text.push_str(&format!("lock chain in {}: {} record(s), chain intact\n", loaded.file_name, loaded.lock.records.len()));
+            text.push_str(&format!(
+                "lock chain in {}: {} record(s), chain intact\n",
+                loaded.file_name,
+                loaded.lock.records.len()
+            ));
             let mut previous: Option<&str> = None;
             for record in &loaded.lock.records {
                 text.push_str(&format!(
@@ -39,9 +44,16 @@ pub fn history(plan_path: &Path) -> Result<String, Error> {
             }
             if let Some(last) = loaded.lock.records.last() {
                 if sha256_hex(&plan_bytes) == last.plan_sha256 {
-                    text.push_str(&format!("\nthe plan file matches record {}\n", last.sequence));
+                    text.push_str(&format!(
+                        "\nthe plan file matches record {}\n",
+                        last.sequence
+                    ));
                 } else {
-                    text.push_str(&format!("\nthe plan file has changed since record {} (SHA-256 now {}):\n", last.sequence, sha256_hex(&plan_bytes)));
+                    text.push_str(&format!(
+                        "\nthe plan file has changed since record {} (SHA-256 now {}):\n",
+                        last.sequence,
+                        sha256_hex(&plan_bytes)
+                    ));
                     text.push_str(&indent(&line_diff(&last.plan_text, &plan_text)));
                 }
             }
@@ -51,10 +63,20 @@ pub fn history(plan_path: &Path) -> Result<String, Error> {
     if entries.is_empty() {
         text.push_str("\nno audit log\n");
     } else {
-        text.push_str(&format!("\naudit log: {} line(s), chain intact\n", entries.len()));
+        text.push_str(&format!(
+            "\naudit log: {} line(s), chain intact\n",
+            entries.len()
+        ));
         for entry in &entries {
-            let manifest = entry.manifest_sha256.as_deref().map(|hash| format!(", outputs manifest {hash}")).unwrap_or_default();
-            text.push_str(&format!("  {} {} → {} (plan {}{manifest})\n", entry.time, entry.command, entry.outcome, entry.plan_sha256));
+            let manifest = entry
+                .manifest_sha256
+                .as_deref()
+                .map(|hash| format!(", outputs manifest {hash}"))
+                .unwrap_or_default();
+            text.push_str(&format!(
+                "  {} {} → {} (plan {}{manifest})\n",
+                entry.time, entry.command, entry.outcome, entry.plan_sha256
+            ));
         }
     }
     Ok(text)
@@ -72,13 +94,21 @@ pub fn line_diff(before: &str, after: &str) -> String {
     let new: Vec<&str> = after.lines().collect();
     const LIMIT: usize = 20_000;
     if old.len() * new.len() > LIMIT * LIMIT / 4 {
-        return format!("(the texts are too long to compare line by line: {} and {} lines)\n", old.len(), new.len());
+        return format!(
+            "(the texts are too long to compare line by line: {} and {} lines)\n",
+            old.len(),
+            new.len()
+        );
     }
     // Longest common subsequence table, filled from the end.
     let mut table = vec![vec![0u32; new.len() + 1]; old.len() + 1];
     for i in (0..old.len()).rev() {
         for j in (0..new.len()).rev() {
-            table[i][j] = if old[i] == new[j] { table[i + 1][j + 1] + 1 } else { table[i + 1][j].max(table[i][j + 1]) };
+            table[i][j] = if old[i] == new[j] {
+                table[i + 1][j + 1] + 1
+            } else {
+                table[i + 1][j].max(table[i][j + 1])
+            };
         }
     }
     let (mut i, mut j) = (0, 0);

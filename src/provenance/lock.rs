@@ -67,14 +67,18 @@ impl LockRecord {
             previous_record_sha256: &self.previous_record_sha256,
             plan_text: &self.plan_text,
         };
-        let text = serde_yaml::to_string(&body).map_err(|cause| Error::internal(format!("cannot serialise a lock record: {cause}")))?;
+        let text = serde_yaml::to_string(&body)
+            .map_err(|cause| Error::internal(format!("cannot serialise a lock record: {cause}")))?;
         Ok(sha256_hex(text.as_bytes()))
     }
 }
 
 /// The lock file that belongs to a plan: `plan.yaml` → `plan.lock.yaml`.
 pub fn lock_path(plan_path: &Path) -> PathBuf {
-    let stem = plan_path.file_stem().map(|stem| stem.to_string_lossy().into_owned()).unwrap_or_else(|| "plan".to_string());
+    let stem = plan_path
+        .file_stem()
+        .map(|stem| stem.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "plan".to_string());
     plan_path.with_file_name(format!("{stem}.lock.yaml"))
 }
 
@@ -89,7 +93,10 @@ pub struct LoadedLock {
 /// Read and check the lock file of a plan; `Ok(None)` when there is none.
 pub fn read(plan_path: &Path) -> Result<Option<LoadedLock>, Error> {
     let path = lock_path(plan_path);
-    let file_name = path.file_name().map(|name| name.to_string_lossy().into_owned()).unwrap_or_default();
+    let file_name = path
+        .file_name()
+        .map(|name| name.to_string_lossy().into_owned())
+        .unwrap_or_default();
     let bytes = match std::fs::read(&path) {
         Ok(bytes) => bytes,
         Err(cause) if cause.kind() == std::io::ErrorKind::NotFound => return Ok(None),
@@ -99,12 +106,27 @@ pub fn read(plan_path: &Path) -> Result<Option<LoadedLock>, Error> {
     let lock: LockFile = serde_yaml::from_str(text).map_err(|cause| {
         let location = cause.location();
         Error::one(
-            Problem::new(ErrorKind::LockRecord, format!("the lock file is malformed: {}", strip_location(&cause.to_string())))
-                .at(Location { file: file_name.clone(), line: location.as_ref().map(|l| l.line()), column: location.as_ref().map(|l| l.column()), path: None }),
+            Problem::new(
+                ErrorKind::LockRecord,
+                format!(
+                    "the lock file is malformed: {}",
+                    strip_location(&cause.to_string())
+                ),
+            )
+            .at(Location {
+                file: file_name.clone(),
+                line: location.as_ref().map(|l| l.line()),
+                column: location.as_ref().map(|l| l.column()),
+                path: None,
+            }),
         )
     })?;
     check_chain(&lock, &file_name)?;
-    Ok(Some(LoadedLock { file_name, bytes, lock }))
+    Ok(Some(LoadedLock {
+        file_name,
+        bytes,
+        lock,
+    }))
 }
 
 fn strip_location(message: &str) -> String {
@@ -116,9 +138,14 @@ fn strip_location(message: &str) -> String {
 
 /// Verify every record's own hash and its link to the one before.
 pub fn check_chain(lock: &LockFile, file_name: &str) -> Result<(), Error> {
-    let broken = |message: String| Error::one(Problem::new(ErrorKind::LockRecord, message).at(Location::file(file_name)));
+    let broken = |message: String| {
+        Error::one(Problem::new(ErrorKind::LockRecord, message).at(Location::file(file_name)))
+    };
     if lock.cairn_lock != 1 {
-        return Err(broken(format!("lock file version {} is not supported; this cairn reads version 1", lock.cairn_lock)));
+        return Err(broken(format!(
+            "lock file version {} is not supported; this cairn reads version 1",
+            lock.cairn_lock
+        )));
     }
     if lock.records.is_empty() {
         return Err(broken("the lock file holds no records".to_string()));
@@ -127,17 +154,29 @@ pub fn check_chain(lock: &LockFile, file_name: &str) -> Result<(), Error> {
     for (index, record) in lock.records.iter().enumerate() {
         let expected_sequence = index as u32 + 1;
         if record.sequence != expected_sequence {
-            return Err(broken(format!("record {} has sequence {}; a record was removed or reordered", expected_sequence, record.sequence)));
+            return Err(broken(format!(
+                "record {} has sequence {}; a record was removed or reordered",
+                expected_sequence, record.sequence
+            )));
         }
         if record.computed_hash()? != record.record_sha256 {
-            return Err(broken(format!("record {} was edited after it was written: its contents no longer match its hash", record.sequence)));
+            return Err(broken(format!(
+                "record {} was edited after it was written: its contents no longer match its hash",
+                record.sequence
+            )));
         }
         if sha256_hex(record.plan_text.as_bytes()) != record.plan_sha256 {
-            return Err(broken(format!("record {}: the stored plan text does not match the stored plan hash", record.sequence)));
+            return Err(broken(format!(
+                "record {}: the stored plan text does not match the stored plan hash",
+                record.sequence
+            )));
         }
         let expected_previous = previous.map(|earlier| earlier.record_sha256.clone());
         if record.previous_record_sha256 != expected_previous {
-            return Err(broken(format!("the chain breaks at record {}: it does not point to the hash of record {}", record.sequence, index)));
+            return Err(broken(format!(
+                "the chain breaks at record {}: it does not point to the hash of record {}",
+                record.sequence, index
+            )));
         }
         previous = Some(record);
     }
@@ -157,24 +196,41 @@ pub struct LockRequest<'a> {
 
 /// Append a record to the plan's lock file (creating it), and return the record.
 pub fn append(request: LockRequest<'_>) -> Result<LockRecord, Error> {
-    let plan_file = request.plan_path.file_name().map(|name| name.to_string_lossy().into_owned()).unwrap_or_default();
+    let plan_file = request
+        .plan_path
+        .file_name()
+        .map(|name| name.to_string_lossy().into_owned())
+        .unwrap_or_default();
     let plan_text = crate::data::decode_utf8(request.plan_bytes, &plan_file)?.to_string();
     let existing = read(request.plan_path)?;
     let plan_sha256 = sha256_hex(plan_text.as_bytes());
     let mut lock = match existing {
         Some(loaded) => loaded.lock,
-        None => LockFile { cairn_lock: 1, records: Vec::new() },
+        None => LockFile {
+            cairn_lock: 1,
+            records: Vec::new(),
+        },
     };
     if let Some(last) = lock.records.last()
-        && last.plan_sha256 == plan_sha256 {
-            return Err(Error::one(
-                Problem::new(ErrorKind::LockRecord, format!("the plan is already locked with these exact contents (record {})", last.sequence))
-                    .at(Location::file(plan_file)),
-            ));
-        }
+        && last.plan_sha256 == plan_sha256
+    {
+        return Err(Error::one(
+            Problem::new(
+                ErrorKind::LockRecord,
+                format!(
+                    "the plan is already locked with these exact contents (record {})",
+                    last.sequence
+                ),
+            )
+            .at(Location::file(plan_file)),
+        ));
+    }
     for (field, value) in [("--by", request.locked_by), ("--reason", request.reason)] {
         if value.trim().is_empty() {
-            return Err(Error::one(Problem::new(ErrorKind::PlanSchema, format!("{field} must not be empty"))));
+            return Err(Error::one(Problem::new(
+                ErrorKind::PlanSchema,
+                format!("{field} must not be empty"),
+            )));
         }
     }
     let mut record = LockRecord {
@@ -192,7 +248,8 @@ pub fn append(request: LockRequest<'_>) -> Result<LockRecord, Error> {
     };
     record.record_sha256 = record.computed_hash()?;
     lock.records.push(record.clone());
-    let text = serde_yaml::to_string(&lock).map_err(|cause| Error::internal(format!("cannot serialise the lock file: {cause}")))?;
+    let text = serde_yaml::to_string(&lock)
+        .map_err(|cause| Error::internal(format!("cannot serialise the lock file: {cause}")))?;
     let path = lock_path(request.plan_path);
     crate::output::write_atomically(&path, text.as_bytes())?;
     Ok(record)

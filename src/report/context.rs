@@ -4,8 +4,8 @@
 //! `markdown_text` here, once (or `markdown_code` where it is shown as code);
 //! templates print context values verbatim.
 
-use super::format::*;
 use super::CAUTION;
+use super::format::*;
 
 /// The text a dry run puts in place of every number that compares arms.
 const MASKED: &str = "masked in the dry run";
@@ -194,9 +194,20 @@ struct CoefficientRow {
 
 pub fn build(results: &Results) -> Context {
     let arm_label = |code: &str| {
-        results.study.arms.iter().find(|arm| arm.code == code).map(|arm| arm.label.clone()).unwrap_or_else(|| code.to_string())
+        results
+            .study
+            .arms
+            .iter()
+            .find(|arm| arm.code == code)
+            .map(|arm| arm.label.clone())
+            .unwrap_or_else(|| code.to_string())
     };
-    let arm_labels: Vec<String> = results.study.arms.iter().map(|arm| markdown_text(&arm.label)).collect();
+    let arm_labels: Vec<String> = results
+        .study
+        .arms
+        .iter()
+        .map(|arm| markdown_text(&arm.label))
+        .collect();
     let lock_sentence = match (&results.plan.last_lock, results.plan.lock_status) {
         (Some(lock), "locked") => format!(
             "Locked: record {} of {}, sealed {} by {} (reason: {}), with cairn {}.",
@@ -215,37 +226,70 @@ pub fn build(results: &Results) -> Context {
         ),
         (None, _) => "**Not locked**: no lock record exists for this plan.".to_string(),
     };
-    let sides = if results.study.sides == 1 { "one-sided" } else { "two-sided" };
-    let alpha_sentence = format!("Familywise significance level {} ({sides}).", results.study.alpha);
+    let sides = if results.study.sides == 1 {
+        "one-sided"
+    } else {
+        "two-sided"
+    };
+    let alpha_sentence = format!(
+        "Familywise significance level {} ({sides}).",
+        results.study.alpha
+    );
 
     let total = |cells: &[usize]| count(cells.iter().sum::<usize>());
     let mut flow = vec![FlowRow {
         label: "Randomised (in both files)".to_string(),
-        cells: results.subjects.randomised_per_arm.iter().map(|value| count(*value)).collect(),
+        cells: results
+            .subjects
+            .randomised_per_arm
+            .iter()
+            .map(|value| count(*value))
+            .collect(),
         total: total(&results.subjects.randomised_per_arm),
     }];
     for population in &results.subjects.populations {
         flow.push(FlowRow {
             label: markdown_text(&population.label),
-            cells: population.per_arm.iter().map(|value| count(*value)).collect(),
+            cells: population
+                .per_arm
+                .iter()
+                .map(|value| count(*value))
+                .collect(),
             total: total(&population.per_arm),
         });
     }
     let mut flow_notes = Vec::new();
     if !results.subjects.only_in_subjects_file.is_empty() {
-        flow_notes.push(format!("{} subject(s) in the subjects file have no allocation and are not analysed.", results.subjects.only_in_subjects_file.len()));
+        flow_notes.push(format!(
+            "{} subject(s) in the subjects file have no allocation and are not analysed.",
+            results.subjects.only_in_subjects_file.len()
+        ));
     }
     if !results.subjects.only_in_allocation_file.is_empty() {
-        flow_notes.push(format!("{} allocated subject(s) have no row in the subjects file.", results.subjects.only_in_allocation_file.len()));
+        flow_notes.push(format!(
+            "{} allocated subject(s) have no row in the subjects file.",
+            results.subjects.only_in_allocation_file.len()
+        ));
     }
 
-    let analyses: Vec<AnalysisView> = results.analyses.iter().enumerate().map(|(index, analysis)| analysis_view(index + 1, analysis, results, &arm_label)).collect();
-    let multiplicity = results.multiplicity.as_ref().map(|family| multiplicity_view(analyses.len() + 3, family, results, &arm_label));
+    let analyses: Vec<AnalysisView> = results
+        .analyses
+        .iter()
+        .enumerate()
+        .map(|(index, analysis)| analysis_view(index + 1, analysis, results, &arm_label))
+        .collect();
+    let multiplicity = results
+        .multiplicity
+        .as_ref()
+        .map(|family| multiplicity_view(analyses.len() + 3, family, results, &arm_label));
     let run_banner = match (results.run.mode, results.run.seed) {
         ("dry-run", Some(seed)) => Some(format!(
             "**Blinded dry run (shell report).** Treatment codes are dummy codes (seed {seed}, balanced within strata); the allocation file was not read. Every treatment estimate, confidence interval, test of treatment and multiplicity decision is masked; data checks and convergence are shown."
         )),
-        _ if !results.run.only.is_empty() => Some(format!("**Partial run.** Only these analyses were run, by command-line override: {}.", markdown_text(&results.run.only.join(", ")))),
+        _ if !results.run.only.is_empty() => Some(format!(
+            "**Partial run.** Only these analyses were run, by command-line override: {}.",
+            markdown_text(&results.run.only.join(", "))
+        )),
         _ => None,
     };
     Context {
@@ -264,7 +308,12 @@ pub fn build(results: &Results) -> Context {
         inputs: results
             .inputs
             .iter()
-            .map(|input| InputRow { role: input.role, file: markdown_text(&input.file), sha256: input.sha256.clone(), bytes: input.bytes })
+            .map(|input| InputRow {
+                role: input.role,
+                file: markdown_text(&input.file),
+                sha256: input.sha256.clone(),
+                bytes: input.bytes,
+            })
             .collect(),
         deviations: results
             .deviations
@@ -272,7 +321,11 @@ pub fn build(results: &Results) -> Context {
             .map(|deviation| DeviationRow {
                 code: deviation.code,
                 severity: deviation.severity,
-                scope: deviation.analysis.as_deref().map(markdown_text).unwrap_or_else(|| "whole run".to_string()),
+                scope: deviation
+                    .analysis
+                    .as_deref()
+                    .map(markdown_text)
+                    .unwrap_or_else(|| "whole run".to_string()),
                 message: markdown_text(&deviation.message),
             })
             .collect(),
@@ -288,7 +341,11 @@ pub fn build(results: &Results) -> Context {
 fn share(value: f64) -> String {
     let text = fixed(value, 4);
     let trimmed = text.trim_end_matches('0').trim_end_matches('.');
-    if trimmed.is_empty() { "0".to_string() } else { trimmed.to_string() }
+    if trimmed.is_empty() {
+        "0".to_string()
+    } else {
+        trimmed.to_string()
+    }
 }
 
 fn level(value: f64) -> String {
@@ -300,7 +357,12 @@ fn level(value: f64) -> String {
     trimmed.to_string()
 }
 
-fn multiplicity_view(section: usize, family: &MultiplicityResult, results: &Results, arm_label: &dyn Fn(&str) -> String) -> MultiplicityView {
+fn multiplicity_view(
+    section: usize,
+    family: &MultiplicityResult,
+    results: &Results,
+    arm_label: &dyn Fn(&str) -> String,
+) -> MultiplicityView {
     let procedure_words = match family.procedure {
         "bonferroni" => "the (weighted) Bonferroni procedure",
         "holm" => "the (weighted) Holm procedure (Holm 1979)",
@@ -308,19 +370,38 @@ fn multiplicity_view(section: usize, family: &MultiplicityResult, results: &Resu
         "hommel" => "the Hommel procedure (Hommel 1988)",
         "fixed-sequence" => "a fixed-sequence procedure in the planned order",
         "fallback" => "the fallback procedure (Wiens 2003) in the planned order",
-        _ => "the graphical procedure of Bretz, Maurer, Brannath and Posch (2009) with the planned initial weights and transitions",
+        _ => {
+            "the graphical procedure of Bretz, Maurer, Brannath and Posch (2009) with the planned initial weights and transitions"
+        }
     };
-    let sides = if family.sides == 1 { "one-sided p-values in the direction of benefit" } else { "two-sided p-values" };
+    let sides = if family.sides == 1 {
+        "one-sided p-values in the direction of benefit"
+    } else {
+        "two-sided p-values"
+    };
     let summary = format!(
         "The familywise error rate over the {} hypotheses below is controlled at α = {} ({sides}) by {procedure_words}. A hypothesis is rejected when its adjusted p-value is at most α.",
         family.hypotheses.len(),
         family.alpha
     );
     let comparison_of = |hypothesis: &HypothesisResultInfo| {
-        let analysis = results.analyses.iter().find(|analysis| analysis.id == hypothesis.analysis);
-        let contrast = analysis.and_then(|analysis| analysis.contrasts.iter().find(|contrast| contrast.id == hypothesis.contrast));
+        let analysis = results
+            .analyses
+            .iter()
+            .find(|analysis| analysis.id == hypothesis.analysis);
+        let contrast = analysis.and_then(|analysis| {
+            analysis
+                .contrasts
+                .iter()
+                .find(|contrast| contrast.id == hypothesis.contrast)
+        });
         let text = match (analysis, contrast) {
-            (Some(analysis), Some(contrast)) => format!("{}: {} − {}", analysis.title, arm_label(&contrast.arm), arm_label(&contrast.versus)),
+            (Some(analysis), Some(contrast)) => format!(
+                "{}: {} − {}",
+                analysis.title,
+                arm_label(&contrast.arm),
+                arm_label(&contrast.versus)
+            ),
             _ => format!("{} / {}", hypothesis.analysis, hypothesis.contrast),
         };
         match &hypothesis.label {
@@ -335,8 +416,17 @@ fn multiplicity_view(section: usize, family: &MultiplicityResult, results: &Resu
             id: markdown_text(&hypothesis.id),
             comparison: comparison_of(hypothesis),
             weight: share(hypothesis.initial_weight),
-            raw_p: hypothesis.raw_p.map(p_value).unwrap_or_else(|| if family.masked { "masked".to_string() } else { "none".to_string() }),
-            adjusted_p: hypothesis.adjusted_p.map(p_value).unwrap_or_else(|| "masked".to_string()),
+            raw_p: hypothesis.raw_p.map(p_value).unwrap_or_else(|| {
+                if family.masked {
+                    "masked".to_string()
+                } else {
+                    "none".to_string()
+                }
+            }),
+            adjusted_p: hypothesis
+                .adjusted_p
+                .map(p_value)
+                .unwrap_or_else(|| "masked".to_string()),
             decision: if family.masked {
                 "masked (dry run)".to_string()
             } else if hypothesis.analysis_failed {
@@ -351,22 +441,42 @@ fn multiplicity_view(section: usize, family: &MultiplicityResult, results: &Resu
             },
         })
         .collect();
-    let ids: Vec<String> = family.hypotheses.iter().map(|hypothesis| markdown_text(&hypothesis.id)).collect();
+    let ids: Vec<String> = family
+        .hypotheses
+        .iter()
+        .map(|hypothesis| markdown_text(&hypothesis.id))
+        .collect();
     let mut steps = Vec::new();
     for step in &family.tests {
-        let index = family.hypotheses.iter().position(|hypothesis| hypothesis.id == step.hypothesis).unwrap_or(0);
+        let index = family
+            .hypotheses
+            .iter()
+            .position(|hypothesis| hypothesis.id == step.hypothesis)
+            .unwrap_or(0);
         steps.push(format!(
             "Step {}: {} is tested at level {}: p = {} → {}.",
             step.step,
             ids[index],
             level(step.local_level),
             level(step.p_value),
-            if step.rejected { "rejected" } else { "not rejected" }
+            if step.rejected {
+                "rejected"
+            } else {
+                "not rejected"
+            }
         ));
     }
-    let mut current_weights: Vec<f64> = family.hypotheses.iter().map(|hypothesis| hypothesis.initial_weight).collect();
+    let mut current_weights: Vec<f64> = family
+        .hypotheses
+        .iter()
+        .map(|hypothesis| hypothesis.initial_weight)
+        .collect();
     for step in &family.graph_steps {
-        let index = family.hypotheses.iter().position(|hypothesis| hypothesis.id == step.rejected).unwrap_or(0);
+        let index = family
+            .hypotheses
+            .iter()
+            .position(|hypothesis| hypothesis.id == step.rejected)
+            .unwrap_or(0);
         let weights: Vec<String> = step
             .weights_after
             .iter()
@@ -400,19 +510,34 @@ fn multiplicity_view(section: usize, family: &MultiplicityResult, results: &Resu
         .enumerate()
         .filter(|(_, hypothesis)| !hypothesis.rejected)
         .map(|(index, hypothesis)| {
-            let p = hypothesis.raw_p.map(level).unwrap_or_else(|| "none".to_string());
+            let p = hypothesis
+                .raw_p
+                .map(level)
+                .unwrap_or_else(|| "none".to_string());
             if family.procedure == "graphical" {
-                format!("{} (p = {p}, local level {})", ids[index], level(current_weights[index] * family.alpha))
+                format!(
+                    "{} (p = {p}, local level {})",
+                    ids[index],
+                    level(current_weights[index] * family.alpha)
+                )
             } else {
                 format!("{} (p = {p})", ids[index])
             }
         })
         .collect();
-    let rejected = family.hypotheses.iter().filter(|hypothesis| hypothesis.rejected).count();
+    let rejected = family
+        .hypotheses
+        .iter()
+        .filter(|hypothesis| hypothesis.rejected)
+        .count();
     let conclusion = if family.masked {
-        "The decisions are masked in the dry run; the strategy above is what the run will apply.".to_string()
+        "The decisions are masked in the dry run; the strategy above is what the run will apply."
+            .to_string()
     } else if remaining.is_empty() {
-        format!("All {rejected} hypotheses are rejected at familywise level {}.", family.alpha)
+        format!(
+            "All {rejected} hypotheses are rejected at familywise level {}.",
+            family.alpha
+        )
     } else if family.procedure == "graphical" {
         format!(
             "{rejected} of {} hypotheses are rejected. No remaining hypothesis has a p-value at or below its local level: {}.",
@@ -420,12 +545,28 @@ fn multiplicity_view(section: usize, family: &MultiplicityResult, results: &Resu
             remaining.join(", ")
         )
     } else {
-        format!("{rejected} of {} hypotheses are rejected; not rejected: {}.", family.hypotheses.len(), remaining.join(", "))
+        format!(
+            "{rejected} of {} hypotheses are rejected; not rejected: {}.",
+            family.hypotheses.len(),
+            remaining.join(", ")
+        )
     };
-    MultiplicityView { section, graph: family.procedure == "graphical", summary, rows, steps, conclusion }
+    MultiplicityView {
+        section,
+        graph: family.procedure == "graphical",
+        summary,
+        rows,
+        steps,
+        conclusion,
+    }
 }
 
-fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, arm_label: &dyn Fn(&str) -> String) -> AnalysisView {
+fn analysis_view(
+    number: usize,
+    analysis: &AnalysisResult,
+    results: &Results,
+    arm_label: &dyn Fn(&str) -> String,
+) -> AnalysisView {
     let reference = arm_label(&results.study.reference_arm);
     let population_label = results
         .subjects
@@ -441,13 +582,33 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         _ => 3,
     };
     let confidence = percent(analysis.confidence_level);
-    let scale = analysis.contrasts.first().map(|contrast| contrast.scale).unwrap_or("difference");
-    let ratio_name = analysis.contrasts.iter().find_map(|contrast| contrast.ratio.as_ref().map(|ratio| ratio.name));
+    let scale = analysis
+        .contrasts
+        .first()
+        .map(|contrast| contrast.scale)
+        .unwrap_or("difference");
+    let ratio_name = analysis
+        .contrasts
+        .iter()
+        .find_map(|contrast| contrast.ratio.as_ref().map(|ratio| ratio.name));
 
     // Methods text.
-    let mut terms = vec![format!("treatment (reference: {})", markdown_text(&reference))];
-    terms.extend(analysis.covariates.iter().map(|variable| markdown_text(&variable.label)));
-    terms.extend(analysis.strata.iter().map(|variable| format!("{} (stratum)", markdown_text(&variable.label))));
+    let mut terms = vec![format!(
+        "treatment (reference: {})",
+        markdown_text(&reference)
+    )];
+    terms.extend(
+        analysis
+            .covariates
+            .iter()
+            .map(|variable| markdown_text(&variable.label)),
+    );
+    terms.extend(
+        analysis
+            .strata
+            .iter()
+            .map(|variable| format!("{} (stratum)", markdown_text(&variable.label))),
+    );
     let mut methods = format!(
         "{} to {} in the {} (n = {}), with {} as fixed effects. ",
         markdown_text(&analysis.model.description),
@@ -471,12 +632,27 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
             markdown_text(&pooling.into)
         ));
     }
-    let reference_distribution = match analysis.contrasts.first().and_then(|contrast| contrast.estimate.as_ref()).and_then(|estimate| estimate.df) {
+    let reference_distribution = match analysis
+        .contrasts
+        .first()
+        .and_then(|contrast| contrast.estimate.as_ref())
+        .and_then(|estimate| estimate.df)
+    {
         Some(df) => format!("the t distribution on {} degrees of freedom", degrees(df)),
         None => "the normal distribution".to_string(),
     };
-    let exponentiated = ratio_name.map(|name| format!(", and exponentiated as {name}s")).unwrap_or_default();
-    let interval_kind = if analysis.contrasts.iter().any(|contrast| contrast.interval_method == "profile likelihood") { "profile-likelihood or Wald" } else { "Wald" };
+    let exponentiated = ratio_name
+        .map(|name| format!(", and exponentiated as {name}s"))
+        .unwrap_or_default();
+    let interval_kind = if analysis
+        .contrasts
+        .iter()
+        .any(|contrast| contrast.interval_method == "profile likelihood")
+    {
+        "profile-likelihood or Wald"
+    } else {
+        "Wald"
+    };
     methods.push_str(&format!(
         "Treatment comparisons are contrasts of the model coefficients on the {scale} scale{exponentiated}, with {confidence} {interval_kind} confidence intervals and two-sided p-values from {reference_distribution}. "
     ));
@@ -489,23 +665,52 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
 
     let mut analysis_flow = vec![FlowRow {
         label: format!("In {}", markdown_text(&population_label)),
-        cells: analysis.in_population_per_arm.iter().map(|value| count(*value)).collect(),
+        cells: analysis
+            .in_population_per_arm
+            .iter()
+            .map(|value| count(*value))
+            .collect(),
         total: count(analysis.in_population_per_arm.iter().sum::<usize>()),
     }];
     for exclusion in &analysis.exclusions {
         analysis_flow.push(FlowRow {
-            label: format!("Excluded: {} missing", markdown_text(&exclusion.missing_label)),
-            cells: exclusion.per_arm.iter().map(|value| count(*value)).collect(),
+            label: format!(
+                "Excluded: {} missing",
+                markdown_text(&exclusion.missing_label)
+            ),
+            cells: exclusion
+                .per_arm
+                .iter()
+                .map(|value| count(*value))
+                .collect(),
             total: count(exclusion.per_arm.iter().sum::<usize>()),
         });
     }
-    analysis_flow.push(FlowRow { label: "Analysed".to_string(), cells: analysis.analysed_per_arm.iter().map(|value| count(*value)).collect(), total: count(n_analysed) });
+    analysis_flow.push(FlowRow {
+        label: "Analysed".to_string(),
+        cells: analysis
+            .analysed_per_arm
+            .iter()
+            .map(|value| count(*value))
+            .collect(),
+        total: count(n_analysed),
+    });
     let pooling = analysis
         .pooling
         .iter()
         .map(|pooling| {
-            let levels: Vec<String> = pooling.pooled_levels.iter().map(|level| format!("{} ({})", markdown_text(&level.level), level.subjects)).collect();
-            format!("{}: {} pooled into \"{}\" ({} subjects).", markdown_text(&pooling.stratum_label), levels.join(", "), markdown_text(&pooling.into), pooling.pooled_size)
+            let levels: Vec<String> = pooling
+                .pooled_levels
+                .iter()
+                .map(|level| format!("{} ({})", markdown_text(&level.level), level.subjects))
+                .collect();
+            format!(
+                "{}: {} pooled into \"{}\" ({} subjects).",
+                markdown_text(&pooling.stratum_label),
+                levels.join(", "),
+                markdown_text(&pooling.into),
+                pooling.pooled_size
+            )
         })
         .collect();
 
@@ -515,8 +720,16 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
     let mut effects = Vec::new();
     let mut effect_sentences = Vec::new();
     for contrast in &analysis.contrasts {
-        let label = format!("{} vs {}", markdown_text(&arm_label(&contrast.arm)), markdown_text(&arm_label(&contrast.versus)));
-        let category = contrast.category.as_deref().map(markdown_text).unwrap_or_default();
+        let label = format!(
+            "{} vs {}",
+            markdown_text(&arm_label(&contrast.arm)),
+            markdown_text(&arm_label(&contrast.versus))
+        );
+        let category = contrast
+            .category
+            .as_deref()
+            .map(markdown_text)
+            .unwrap_or_default();
         match (&contrast.estimate, &contrast.failure) {
             (Some(estimate), _) => {
                 let row = match &contrast.ratio {
@@ -526,7 +739,11 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
                             label: label.clone(),
                             category: category.clone(),
                             estimate: fixed(ratio.estimate, ratio_decimals),
-                            standard_error: format!("{} ({})", fixed(estimate.estimate, 3), fixed(estimate.standard_error, 3)),
+                            standard_error: format!(
+                                "{} ({})",
+                                fixed(estimate.estimate, 3),
+                                fixed(estimate.standard_error, 3)
+                            ),
                             interval: interval(ratio.lower, ratio.upper, ratio_decimals),
                             p_value: p_value(estimate.p_value),
                         }
@@ -543,8 +760,16 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
                 effects.push(row);
                 if ordered {
                     let arm_higher = estimate.estimate > 0.0;
-                    let favoured = if arm_higher != lower_is_better { arm_label(&contrast.arm) } else { arm_label(&contrast.versus) };
-                    let direction = if lower_is_better { "lower values are better" } else { "higher values are better" };
+                    let favoured = if arm_higher != lower_is_better {
+                        arm_label(&contrast.arm)
+                    } else {
+                        arm_label(&contrast.versus)
+                    };
+                    let direction = if lower_is_better {
+                        "lower values are better"
+                    } else {
+                        "higher values are better"
+                    };
                     let what = match analysis.endpoint.kind {
                         "binary" => "a higher chance of the event",
                         "count" => "more events",
@@ -554,13 +779,24 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
                     let sentence = if estimate.estimate == 0.0 {
                         format!("{label}: no difference in the point estimate.")
                     } else if analysis.endpoint.kind == "continuous" {
-                        format!("{label}: the point estimate favours {} ({direction}).", markdown_text(&favoured))
+                        format!(
+                            "{label}: the point estimate favours {} ({direction}).",
+                            markdown_text(&favoured)
+                        )
                     } else {
-                        let subject = if arm_higher { arm_label(&contrast.arm) } else { arm_label(&contrast.versus) };
+                        let subject = if arm_higher {
+                            arm_label(&contrast.arm)
+                        } else {
+                            arm_label(&contrast.versus)
+                        };
                         format!(
                             "{label}: the point estimate gives {} {what}; as {}, it favours {}.",
                             markdown_text(&subject),
-                            if lower_is_better { "higher values are worse" } else { "higher values are better" },
+                            if lower_is_better {
+                                "higher values are worse"
+                            } else {
+                                "higher values are better"
+                            },
                             markdown_text(&favoured)
                         )
                     };
@@ -603,7 +839,12 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
                 Some(df2) => format!("{}, {}", degrees(test.df1), degrees(df2)),
                 None => degrees(test.df1),
             };
-            format!("{name}({df}) = {}, p = {}", statistic(test.statistic), p_value(test.p_value)).replace("p = <", "p <")
+            format!(
+                "{name}({df}) = {}, p = {}",
+                statistic(test.statistic),
+                p_value(test.p_value)
+            )
+            .replace("p = <", "p <")
         })
         .collect();
     let mut overall = (!overall_parts.is_empty()).then(|| overall_parts.join("; "));
@@ -638,7 +879,11 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
                 n: count(analysis.analysed_per_arm[index]),
                 estimate: "not estimable".to_string(),
                 standard_error: String::new(),
-                interval: mean.failure.as_deref().map(markdown_text).unwrap_or_default(),
+                interval: mean
+                    .failure
+                    .as_deref()
+                    .map(markdown_text)
+                    .unwrap_or_default(),
             },
         })
         .collect();
@@ -647,7 +892,9 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         .iter()
         .map(|row| {
             let name = match &row.category {
-                Some(category) => format!("{}: {}", markdown_text(category), markdown_text(&row.name)),
+                Some(category) => {
+                    format!("{}: {}", markdown_text(category), markdown_text(&row.name))
+                }
                 None => markdown_text(&row.name),
             };
             match &row.estimate {
@@ -659,49 +906,88 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
                     p_value: p_value(estimate.p_value),
                     interval: interval(estimate.lower, estimate.upper, decimals.max(3)),
                 },
-                None if row.masked => CoefficientRow { name, estimate: "masked".to_string(), standard_error: String::new(), statistic: String::new(), p_value: String::new(), interval: String::new() },
-                None => CoefficientRow { name, estimate: "aliased".to_string(), standard_error: String::new(), statistic: String::new(), p_value: String::new(), interval: String::new() },
+                None if row.masked => CoefficientRow {
+                    name,
+                    estimate: "masked".to_string(),
+                    standard_error: String::new(),
+                    statistic: String::new(),
+                    p_value: String::new(),
+                    interval: String::new(),
+                },
+                None => CoefficientRow {
+                    name,
+                    estimate: "aliased".to_string(),
+                    standard_error: String::new(),
+                    statistic: String::new(),
+                    p_value: String::new(),
+                    interval: String::new(),
+                },
             }
         })
         .collect();
-    let statistic_header = match analysis.coefficients.iter().find_map(|row| row.estimate.as_ref()).and_then(|estimate| estimate.df) {
+    let statistic_header = match analysis
+        .coefficients
+        .iter()
+        .find_map(|row| row.estimate.as_ref())
+        .and_then(|estimate| estimate.df)
+    {
         Some(_) => "t",
         None => "z",
     };
     let fit_line = analysis.fit.as_ref().map(|fit| {
-        let mut parts = vec![format!("n = {}", count(fit.n_analysed)), format!("{} parameters of rank {}", fit.n_parameters, fit.rank)];
+        let mut parts = vec![
+            format!("n = {}", count(fit.n_analysed)),
+            format!("{} parameters of rank {}", fit.n_parameters, fit.rank),
+        ];
         if let Some(sd) = fit.residual_sd {
-            parts.push(format!("residual SD {} on {} degrees of freedom", fixed(sd, decimals + 1), fit.residual_df.unwrap_or(0)));
+            parts.push(format!(
+                "residual SD {} on {} degrees of freedom",
+                fixed(sd, decimals + 1),
+                fit.residual_df.unwrap_or(0)
+            ));
         }
         if let Some(r2) = fit.r_squared {
             parts.push(format!("R² = {}", fixed(r2, 4)));
         }
         if let Some(deviance) = fit.deviance {
-            parts.push(format!("deviance {} on {} degrees of freedom", fixed(deviance, 3), fit.residual_df.unwrap_or(0)));
+            parts.push(format!(
+                "deviance {} on {} degrees of freedom",
+                fixed(deviance, 3),
+                fit.residual_df.unwrap_or(0)
+            ));
         }
         if let Some(log_likelihood) = fit.log_likelihood {
             parts.push(format!("log-likelihood {}", fixed(log_likelihood, 3)));
         }
         if let (Some(pearson), Some(df)) = (fit.pearson_chi_square, fit.residual_df)
-            && df > 0 {
-                parts.push(format!("Pearson χ²/df = {}", fixed(pearson / df as f64, 3)));
-            }
+            && df > 0
+        {
+            parts.push(format!("Pearson χ²/df = {}", fixed(pearson / df as f64, 3)));
+        }
         if let Some(dispersion) = fit.dispersion {
             parts.push(format!("dispersion {}", fixed(dispersion, 4)));
         }
         if let Some(theta) = fit.theta {
-            let se = fit.theta_standard_error.map(|se| format!(" (SE {})", fixed(se, 3))).unwrap_or_default();
+            let se = fit
+                .theta_standard_error
+                .map(|se| format!(" (SE {})", fixed(se, 3)))
+                .unwrap_or_default();
             parts.push(format!("θ = {}{se}", fixed(theta, 3)));
         }
         if let Some(iterations) = fit.iterations {
             if fit.stop_reason.contains("iterations") {
                 parts.push(markdown_text(&fit.stop_reason));
             } else {
-                parts.push(format!("{} ({iterations} iterations)", markdown_text(&fit.stop_reason)));
+                parts.push(format!(
+                    "{} ({iterations} iterations)",
+                    markdown_text(&fit.stop_reason)
+                ));
             }
         }
         if let Some(steps) = fit.refinement_steps {
-            parts.push(format!("{steps} refinement step(s) of the least-squares solution"));
+            parts.push(format!(
+                "{steps} refinement step(s) of the least-squares solution"
+            ));
         }
         format!("{}.", parts.join(", "))
     });
@@ -723,33 +1009,63 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
                 .collect(),
             verdict: markdown_text(&check.verdict),
             failed: check.failed,
-            details: check.details.iter().map(|detail| markdown_text(detail)).collect(),
+            details: check
+                .details
+                .iter()
+                .map(|detail| markdown_text(detail))
+                .collect(),
         })
         .collect();
     let marginal = match (&analysis.marginal, &analysis.marginal_failure) {
         (Some(marginal), _) => {
             let percent_scale = analysis.endpoint.kind == "binary";
-            let show_mean = |value: f64| if percent_scale { fixed(value * 100.0, 1) + "%" } else { fixed(value, 3) };
+            let show_mean = |value: f64| {
+                if percent_scale {
+                    fixed(value * 100.0, 1) + "%"
+                } else {
+                    fixed(value, 3)
+                }
+            };
             Some(MarginalView {
                 sentence: format!(
                     "For each arm, the model's predicted {} is averaged over all {} analysed subjects as if every one had received that arm (standardisation, as the 2023 US FDA guidance on covariate adjustment describes); contrasts of these means have Wald {confidence} confidence intervals from {}.",
-                    if percent_scale { "probability of the event" } else { "mean" },
+                    if percent_scale {
+                        "probability of the event"
+                    } else {
+                        "mean"
+                    },
                     n_analysed,
                     markdown_text(&marginal.variance)
                 ),
                 means: marginal
                     .means
                     .iter()
-                    .map(|mean| MarginalMeanRow { arm: markdown_text(&arm_label(&mean.arm)), mean: show_mean(mean.mean), standard_error: show_mean(mean.standard_error) })
+                    .map(|mean| MarginalMeanRow {
+                        arm: markdown_text(&arm_label(&mean.arm)),
+                        mean: show_mean(mean.mean),
+                        standard_error: show_mean(mean.standard_error),
+                    })
                     .collect(),
                 effects: marginal
                     .effects
                     .iter()
                     .map(|effect| {
                         let difference = effect.scale.ends_with("difference");
-                        let show = |value: f64| if difference && percent_scale { format!("{} points", fixed(value * 100.0, 1)) } else if difference { fixed(value, 3) } else { fixed(value, 2) };
+                        let show = |value: f64| {
+                            if difference && percent_scale {
+                                format!("{} points", fixed(value * 100.0, 1))
+                            } else if difference {
+                                fixed(value, 3)
+                            } else {
+                                fixed(value, 2)
+                            }
+                        };
                         MarginalRow {
-                            label: format!("{} vs {}", markdown_text(&arm_label(&effect.arm)), markdown_text(&arm_label(&effect.versus))),
+                            label: format!(
+                                "{} vs {}",
+                                markdown_text(&arm_label(&effect.arm)),
+                                markdown_text(&arm_label(&effect.versus))
+                            ),
                             scale: capitalise(effect.scale),
                             estimate: show(effect.estimate),
                             interval: format!("{} to {}", show(effect.lower), show(effect.upper)),
@@ -760,14 +1076,23 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
                 failure: None,
             })
         }
-        (None, Some(reason)) => Some(MarginalView { sentence: String::new(), means: Vec::new(), effects: Vec::new(), failure: Some(markdown_text(reason)) }),
+        (None, Some(reason)) => Some(MarginalView {
+            sentence: String::new(),
+            means: Vec::new(),
+            effects: Vec::new(),
+            failure: Some(markdown_text(reason)),
+        }),
         (None, None) => None,
     };
     let estimand = analysis.estimand.as_ref().map(|estimand| EstimandView {
         treatment: markdown_text(&estimand.treatment),
         population: markdown_text(&estimand.population),
         variable: markdown_text(&estimand.variable),
-        events: estimand.intercurrent_events.iter().map(|event| (markdown_text(&event.event), event.strategy)).collect(),
+        events: estimand
+            .intercurrent_events
+            .iter()
+            .map(|event| (markdown_text(&event.event), event.strategy))
+            .collect(),
         summary_measure: markdown_text(&estimand.summary_measure),
     });
     AnalysisView {
@@ -785,9 +1110,20 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         confidence,
         effect_header,
         se_header,
-        has_category: analysis.contrasts.iter().any(|contrast| contrast.category.is_some()),
-        category_header: if analysis.endpoint.kind == "ordinal" { "Cut-point" } else { "Category vs reference" },
-        figure: (analysis.contrasts.iter().any(|contrast| contrast.estimate.is_some())).then(|| format!("forest-{number}")),
+        has_category: analysis
+            .contrasts
+            .iter()
+            .any(|contrast| contrast.category.is_some()),
+        category_header: if analysis.endpoint.kind == "ordinal" {
+            "Cut-point"
+        } else {
+            "Category vs reference"
+        },
+        figure: (analysis
+            .contrasts
+            .iter()
+            .any(|contrast| contrast.estimate.is_some()))
+        .then(|| format!("forest-{number}")),
         effects,
         effect_sentences,
         overall,
@@ -796,7 +1132,16 @@ fn analysis_view(number: usize, analysis: &AnalysisResult, results: &Results, ar
         statistic_header,
         fit_line,
         checks,
-        aliased: analysis.fit.as_ref().map(|fit| fit.aliased_columns.iter().map(|name| markdown_text(name)).collect()).unwrap_or_default(),
+        aliased: analysis
+            .fit
+            .as_ref()
+            .map(|fit| {
+                fit.aliased_columns
+                    .iter()
+                    .map(|name| markdown_text(name))
+                    .collect()
+            })
+            .unwrap_or_default(),
     }
 }
 

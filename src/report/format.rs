@@ -16,7 +16,11 @@ pub fn decimals_for_scale(scale: f64) -> usize {
 /// A fixed-decimal number; never prints "-0.00".
 pub fn fixed(value: f64, decimals: usize) -> String {
     let text = format!("{value:.decimals$}");
-    if text.starts_with('-') && text[1..].chars().all(|character| character == '0' || character == '.') {
+    if text.starts_with('-')
+        && text[1..]
+            .chars()
+            .all(|character| character == '0' || character == '.')
+    {
         text[1..].to_string()
     } else {
         text
@@ -41,7 +45,11 @@ pub fn count(value: usize) -> String {
 
 /// A p-value: four decimals, or "< 0.0001".
 pub fn p_value(p: f64) -> String {
-    if p < 0.0001 { "< 0.0001".to_string() } else { fixed(p, 4) }
+    if p < 0.0001 {
+        "< 0.0001".to_string()
+    } else {
+        fixed(p, 4)
+    }
 }
 
 /// A test statistic: two decimals.
@@ -51,7 +59,11 @@ pub fn statistic(value: f64) -> String {
 
 /// Degrees of freedom: whole numbers without decimals, others with two.
 pub fn degrees(df: f64) -> String {
-    if df.fract() == 0.0 { format!("{df:.0}") } else { fixed(df, 2) }
+    if df.fract() == 0.0 {
+        format!("{df:.0}")
+    } else {
+        fixed(df, 2)
+    }
 }
 
 /// A confidence interval "lower to upper".
@@ -107,7 +119,11 @@ pub fn markdown_code(text: &str) -> String {
         longest_run = longest_run.max(run);
     }
     let fence = "`".repeat(longest_run + 1);
-    let pad = if text.starts_with(['`', ' ']) || text.ends_with(['`', ' ']) { " " } else { "" };
+    let pad = if text.starts_with(['`', ' ']) || text.ends_with(['`', ' ']) {
+        " "
+    } else {
+        ""
+    };
     format!("{fence}{pad}{text}{pad}{fence}")
 }
 

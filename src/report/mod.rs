@@ -18,13 +18,16 @@ pub mod tables;
 use crate::error::Error;
 use crate::results::Results;
 use minijinja::Environment;
-use pulldown_cmark::{html, Event, Options, Parser};
+use pulldown_cmark::{Event, Options, Parser, html};
 use std::collections::BTreeMap;
 
 /// The templates compiled into cairn, by name, as hashed inputs.
 pub const TEMPLATES: [(&str, &str); 3] = [
     ("report.md.j2", include_str!("../../templates/report.md.j2")),
-    ("report.html.j2", include_str!("../../templates/report.html.j2")),
+    (
+        "report.html.j2",
+        include_str!("../../templates/report.html.j2"),
+    ),
     ("report.css", include_str!("../../templates/report.css")),
 ];
 
@@ -49,12 +52,16 @@ pub fn render(results: &Results) -> Result<Rendered, Error> {
     environment.set_syntax(syntax);
     environment.set_undefined_behavior(minijinja::UndefinedBehavior::Strict);
     for (name, text) in TEMPLATES {
-        environment.add_template(name, text).map_err(|cause| Error::internal(format!("template {name} does not compile: {cause}")))?;
+        environment.add_template(name, text).map_err(|cause| {
+            Error::internal(format!("template {name} does not compile: {cause}"))
+        })?;
     }
     let markdown = environment
         .get_template("report.md.j2")
         .and_then(|template| template.render(minijinja::value::Serde(&context)))
-        .map_err(|cause| Error::internal(format!("cannot render the Markdown report: {cause:#}")))?;
+        .map_err(|cause| {
+            Error::internal(format!("cannot render the Markdown report: {cause:#}"))
+        })?;
     let body = markdown_to_html_with_figures(&markdown, &figures);
     let css = TEMPLATES[2].1;
     let html = environment
@@ -87,11 +94,19 @@ fn figure_marker(id: &str) -> String {
 fn markdown_to_html_with_figures(markdown: &str, figures: &BTreeMap<String, String>) -> String {
     let parser = Parser::new_ext(markdown, Options::ENABLE_TABLES).map(|event| match event {
         Event::Html(text) | Event::InlineHtml(text) => {
-            let found = figures.iter().find(|(id, _)| text.trim() == figure_marker(id));
+            let found = figures
+                .iter()
+                .find(|(id, _)| text.trim() == figure_marker(id));
             match found {
                 // Inline SVG in HTML needs no namespace declaration; leaving it
                 // out keeps the page free of any URL.
-                Some((_, svg)) => Event::Html(format!("<figure class=\"cairn-figure\">{}</figure>\n", svg.replace(" xmlns=\"http://www.w3.org/2000/svg\"", "")).into()),
+                Some((_, svg)) => Event::Html(
+                    format!(
+                        "<figure class=\"cairn-figure\">{}</figure>\n",
+                        svg.replace(" xmlns=\"http://www.w3.org/2000/svg\"", "")
+                    )
+                    .into(),
+                ),
                 None => Event::Text(text),
             }
         }
@@ -108,7 +123,8 @@ mod tests {
 
     #[test]
     fn raw_html_never_becomes_markup() {
-        let html = markdown_to_html("a <script>alert(1)</script> b\n\n<img src=x onerror=alert(1)>\n");
+        let html =
+            markdown_to_html("a <script>alert(1)</script> b\n\n<img src=x onerror=alert(1)>\n");
         assert!(!html.contains("<script"));
         assert!(!html.contains("<img"));
         assert!(html.contains("&lt;script&gt;"));
@@ -118,69 +134,153 @@ mod tests {
 /// Every figure of the report, by the id its marker uses: a forest plot per
 /// analysis with estimable contrasts, and the multiplicity graph.
 fn build_figures(results: &Results) -> Result<BTreeMap<String, String>, Error> {
-    use figures::{forest_svg, graph_svg, ForestPlot, ForestRow, ForestScale, GraphFigure, GraphNode};
-    let arm_label = |code: &str| results.study.arms.iter().find(|arm| arm.code == code).map(|arm| arm.label.clone()).unwrap_or_else(|| code.to_string());
+    use figures::{
+        ForestPlot, ForestRow, ForestScale, GraphFigure, GraphNode, forest_svg, graph_svg,
+    };
+    let arm_label = |code: &str| {
+        results
+            .study
+            .arms
+            .iter()
+            .find(|arm| arm.code == code)
+            .map(|arm| arm.label.clone())
+            .unwrap_or_else(|| code.to_string())
+    };
     let mut figures = BTreeMap::new();
     for (index, analysis) in results.analyses.iter().enumerate() {
-        if analysis.contrasts.iter().all(|contrast| contrast.estimate.is_none()) {
+        if analysis
+            .contrasts
+            .iter()
+            .all(|contrast| contrast.estimate.is_none())
+        {
             continue;
         }
-        let ratio = analysis.contrasts.iter().find_map(|contrast| contrast.ratio.as_ref().map(|ratio| ratio.name));
+        let ratio = analysis
+            .contrasts
+            .iter()
+            .find_map(|contrast| contrast.ratio.as_ref().map(|ratio| ratio.name));
         let rows = analysis
             .contrasts
             .iter()
             .map(|contrast| {
-                let mut label = format!("{} vs {}", arm_label(&contrast.arm), arm_label(&contrast.versus));
+                let mut label = format!(
+                    "{} vs {}",
+                    arm_label(&contrast.arm),
+                    arm_label(&contrast.versus)
+                );
                 if let Some(category) = &contrast.category {
                     label = format!("{label}: {category}");
                 }
                 match (&contrast.ratio, &contrast.estimate) {
-                    (Some(ratio), _) => ForestRow { label, estimate: ratio.estimate, lower: ratio.lower, upper: ratio.upper, note: None },
-                    (None, Some(estimate)) if ratio.is_none() => ForestRow { label, estimate: estimate.estimate, lower: estimate.lower, upper: estimate.upper, note: None },
-                    _ => ForestRow { label, estimate: f64::NAN, lower: f64::NAN, upper: f64::NAN, note: Some("not estimable".to_string()) },
+                    (Some(ratio), _) => ForestRow {
+                        label,
+                        estimate: ratio.estimate,
+                        lower: ratio.lower,
+                        upper: ratio.upper,
+                        note: None,
+                    },
+                    (None, Some(estimate)) if ratio.is_none() => ForestRow {
+                        label,
+                        estimate: estimate.estimate,
+                        lower: estimate.lower,
+                        upper: estimate.upper,
+                        note: None,
+                    },
+                    _ => ForestRow {
+                        label,
+                        estimate: f64::NAN,
+                        lower: f64::NAN,
+                        upper: f64::NAN,
+                        note: Some("not estimable".to_string()),
+                    },
                 }
             })
             .collect();
         let confidence = format::percent(analysis.confidence_level);
         let (scale, axis_label) = match ratio {
-            Some(name) => (ForestScale::Ratio, format!("{} ({confidence} CI, log scale)", context::capitalise(name))),
-            None => (ForestScale::Difference, format!("{} in {} ({confidence} CI)", context::capitalise(analysis.contrasts[0].scale), analysis.endpoint.label)),
+            Some(name) => (
+                ForestScale::Ratio,
+                format!("{} ({confidence} CI, log scale)", context::capitalise(name)),
+            ),
+            None => (
+                ForestScale::Difference,
+                format!(
+                    "{} in {} ({confidence} CI)",
+                    context::capitalise(analysis.contrasts[0].scale),
+                    analysis.endpoint.label
+                ),
+            ),
         };
         let ordered = analysis.endpoint.kind != "nominal";
         let lower_is_better = analysis.endpoint.higher_is == "worse";
         let (favours_lower, favours_higher) = match (ordered, lower_is_better) {
             (false, _) => (String::new(), String::new()),
-            (true, true) => ("favours the first-named arm".to_string(), "favours the second-named arm".to_string()),
-            (true, false) => ("favours the second-named arm".to_string(), "favours the first-named arm".to_string()),
+            (true, true) => (
+                "favours the first-named arm".to_string(),
+                "favours the second-named arm".to_string(),
+            ),
+            (true, false) => (
+                "favours the second-named arm".to_string(),
+                "favours the first-named arm".to_string(),
+            ),
         };
         let decimals = match analysis.fit.as_ref().and_then(|fit| fit.residual_sd) {
             Some(sd) if ratio.is_none() => format::decimals_for_scale(sd),
             _ => 2,
         };
-        let plot = ForestPlot { title: analysis.title.clone(), axis_label, scale, favours_lower, favours_higher, rows, value_decimals: decimals };
-        let svg = forest_svg(&plot).map_err(|error| Error::internal(format!("the forest plot of analysis {} could not be drawn: {error}", analysis.id)))?;
+        let plot = ForestPlot {
+            title: analysis.title.clone(),
+            axis_label,
+            scale,
+            favours_lower,
+            favours_higher,
+            rows,
+            value_decimals: decimals,
+        };
+        let svg = forest_svg(&plot).map_err(|error| {
+            Error::internal(format!(
+                "the forest plot of analysis {} could not be drawn: {error}",
+                analysis.id
+            ))
+        })?;
         figures.insert(format!("forest-{}", index + 1), svg);
     }
     if let Some(family) = &results.multiplicity
-        && family.procedure == "graphical" {
-            let nodes = family.hypotheses.iter().map(|hypothesis| GraphNode { name: hypothesis.id.clone(), weight: hypothesis.initial_weight, rejected: false }).collect();
-            // One row per analysis, in the order the family first names them.
-            let mut rows: Vec<(String, Vec<usize>)> = Vec::new();
-            for (index, hypothesis) in family.hypotheses.iter().enumerate() {
-                match rows.iter_mut().find(|(analysis, _)| analysis == &hypothesis.analysis) {
-                    Some((_, members)) => members.push(index),
-                    None => rows.push((hypothesis.analysis.clone(), vec![index])),
-                }
+        && family.procedure == "graphical"
+    {
+        let nodes = family
+            .hypotheses
+            .iter()
+            .map(|hypothesis| GraphNode {
+                name: hypothesis.id.clone(),
+                weight: hypothesis.initial_weight,
+                rejected: false,
+            })
+            .collect();
+        // One row per analysis, in the order the family first names them.
+        let mut rows: Vec<(String, Vec<usize>)> = Vec::new();
+        for (index, hypothesis) in family.hypotheses.iter().enumerate() {
+            match rows
+                .iter_mut()
+                .find(|(analysis, _)| analysis == &hypothesis.analysis)
+            {
+                Some((_, members)) => members.push(index),
+                None => rows.push((hypothesis.analysis.clone(), vec![index])),
             }
-            let figure = GraphFigure {
-                title: "The planned multiplicity graph".to_string(),
-                id_prefix: "family".to_string(),
-                nodes,
-                transitions: family.transitions.clone(),
-                rows: Some(rows.into_iter().map(|(_, members)| members).collect()),
-            };
-            let svg = graph_svg(&figure).map_err(|error| Error::internal(format!("the multiplicity graph could not be drawn: {error}")))?;
-            figures.insert("graph".to_string(), svg);
         }
+        let figure = GraphFigure {
+            title: "The planned multiplicity graph".to_string(),
+            id_prefix: "family".to_string(),
+            nodes,
+            transitions: family.transitions.clone(),
+            rows: Some(rows.into_iter().map(|(_, members)| members).collect()),
+        };
+        let svg = graph_svg(&figure).map_err(|error| {
+            Error::internal(format!(
+                "the multiplicity graph could not be drawn: {error}"
+            ))
+        })?;
+        figures.insert("graph".to_string(), svg);
+    }
     Ok(figures)
 }

@@ -8,11 +8,20 @@ pub fn all(results: &Results) -> Vec<(String, Vec<u8>)> {
     let mut tables = Vec::new();
     let mut flow = String::from("population,arm,subjects\n");
     for (arm_index, arm) in results.study.arms.iter().enumerate() {
-        flow.push_str(&format!("randomised,{},{}\n", csv_field(&arm.code), results.subjects.randomised_per_arm[arm_index]));
+        flow.push_str(&format!(
+            "randomised,{},{}\n",
+            csv_field(&arm.code),
+            results.subjects.randomised_per_arm[arm_index]
+        ));
     }
     for population in &results.subjects.populations {
         for (arm_index, arm) in results.study.arms.iter().enumerate() {
-            flow.push_str(&format!("{},{},{}\n", csv_field(&population.id), csv_field(&arm.code), population.per_arm[arm_index]));
+            flow.push_str(&format!(
+                "{},{},{}\n",
+                csv_field(&population.id),
+                csv_field(&arm.code),
+                population.per_arm[arm_index]
+            ));
         }
     }
     tables.push(("subject-flow.csv".to_string(), flow.into_bytes()));
@@ -29,18 +38,36 @@ pub fn all(results: &Results) -> Vec<(String, Vec<u8>)> {
                 estimate_fields(contrast.estimate.as_ref())
             ));
         }
-        tables.push((format!("{}-contrasts.csv", analysis.id), contrasts.into_bytes()));
+        tables.push((
+            format!("{}-contrasts.csv", analysis.id),
+            contrasts.into_bytes(),
+        ));
         let mut coefficients = format!("column,term,{header}\n");
         for row in &analysis.coefficients {
-            coefficients.push_str(&format!("{},{},{}\n", csv_field(&row.name), csv_field(&row.term), estimate_fields(row.estimate.as_ref())));
+            coefficients.push_str(&format!(
+                "{},{},{}\n",
+                csv_field(&row.name),
+                csv_field(&row.term),
+                estimate_fields(row.estimate.as_ref())
+            ));
         }
-        tables.push((format!("{}-coefficients.csv", analysis.id), coefficients.into_bytes()));
+        tables.push((
+            format!("{}-coefficients.csv", analysis.id),
+            coefficients.into_bytes(),
+        ));
         if !analysis.adjusted_means.is_empty() {
             let mut means = format!("arm,{header}\n");
             for mean in &analysis.adjusted_means {
-                means.push_str(&format!("{},{}\n", csv_field(&mean.arm), estimate_fields(mean.estimate.as_ref())));
+                means.push_str(&format!(
+                    "{},{}\n",
+                    csv_field(&mean.arm),
+                    estimate_fields(mean.estimate.as_ref())
+                ));
             }
-            tables.push((format!("{}-adjusted-means.csv", analysis.id), means.into_bytes()));
+            tables.push((
+                format!("{}-adjusted-means.csv", analysis.id),
+                means.into_bytes(),
+            ));
         }
     }
     tables
@@ -64,5 +91,9 @@ fn estimate_fields(estimate: Option<&EstimateInfo>) -> String {
 
 /// Quote a CSV field when it needs it (RFC 4180).
 fn csv_field(text: &str) -> String {
-    if text.contains([',', '"', '\n', '\r']) { format!("\"{}\"", text.replace('"', "\"\"")) } else { text.to_string() }
+    if text.contains([',', '"', '\n', '\r']) {
+        format!("\"{}\"", text.replace('"', "\"\""))
+    } else {
+        text.to_string()
+    }
 }

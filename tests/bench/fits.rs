@@ -24,11 +24,11 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::Instant;
 
+use cairn::models::StopReason;
 use cairn::models::glm::{Family, GlmData, GlmOptions, Link, fit_glm};
 use cairn::models::linear::{LeastSquaresOptions, fit_least_squares};
 use cairn::models::multinomial::{MultinomialOptions, fit_multinomial_logit};
 use cairn::models::ordinal::{CumulativeLinkOptions, fit_cumulative_link};
-use cairn::models::StopReason;
 use nalgebra::DMatrix;
 use serde_json::Value;
 
@@ -139,14 +139,12 @@ struct CairnFit {
 fn design(trial: &synthetic::Trial, intercept: bool) -> DMatrix<f64> {
     let offset = usize::from(!intercept);
     let n_columns = 4 + trial.n_sites - 1 - offset;
-    DMatrix::from_fn(trial.len(), n_columns, |i, j| {
-        match j + offset {
-            0 => 1.0,
-            1 => f64::from(u8::from(trial.arm[i] == 1)),
-            2 => f64::from(u8::from(trial.arm[i] == 2)),
-            3 => trial.baseline[i],
-            column => f64::from(u8::from(trial.site[i] == column - 3)),
-        }
+    DMatrix::from_fn(trial.len(), n_columns, |i, j| match j + offset {
+        0 => 1.0,
+        1 => f64::from(u8::from(trial.arm[i] == 1)),
+        2 => f64::from(u8::from(trial.arm[i] == 2)),
+        3 => trial.baseline[i],
+        column => f64::from(u8::from(trial.site[i] == column - 3)),
     })
 }
 
@@ -158,7 +156,12 @@ fn all_some(values: &[Option<f64>]) -> Vec<f64> {
     values.iter().map(|v| v.unwrap_or(f64::NAN)).collect()
 }
 
-fn fit_cairn(model: &str, trial: &synthetic::Trial, x: &DMatrix<f64>, x0: &DMatrix<f64>) -> CairnFit {
+fn fit_cairn(
+    model: &str,
+    trial: &synthetic::Trial,
+    x: &DMatrix<f64>,
+    x0: &DMatrix<f64>,
+) -> CairnFit {
     let log_exposure: Vec<f64> = trial.exposure.iter().map(|e| e.ln()).collect();
     match model {
         "linear" => {
@@ -182,7 +185,11 @@ fn fit_cairn(model: &str, trial: &synthetic::Trial, x: &DMatrix<f64>, x0: &DMatr
                 "poisson" => (Family::Poisson, &trial.count),
                 _ => (Family::NegativeBinomial { theta: None }, &trial.nb_count),
             };
-            let link = if model == "binomial" { Link::Logit } else { Link::Log };
+            let link = if model == "binomial" {
+                Link::Logit
+            } else {
+                Link::Log
+            };
             let mut data = GlmData::new(x, response);
             if model != "binomial" {
                 data = data.with_offset(&log_exposure);
@@ -264,7 +271,10 @@ fn fit_cairn(model: &str, trial: &synthetic::Trial, x: &DMatrix<f64>, x0: &DMatr
 
 fn statsmodels_available() -> Option<String> {
     let output = Command::new("python3")
-        .args(["-c", "import statsmodels, scipy, pandas; print(statsmodels.__version__)"])
+        .args([
+            "-c",
+            "import statsmodels, scipy, pandas; print(statsmodels.__version__)",
+        ])
         .output()
         .ok()?;
     output
@@ -285,7 +295,12 @@ fn run_statsmodels(
         .arg(script)
         .arg(csv)
         .args(["--sites", &n_sites.to_string(), "--runs", &runs.to_string()])
-        .args(["--skip", &skip.join(","), "--ordinal-method", ORDINAL_METHOD])
+        .args([
+            "--skip",
+            &skip.join(","),
+            "--ordinal-method",
+            ORDINAL_METHOD,
+        ])
         .args(["--runs-cumulative", &cumulative_runs.to_string()])
         .env("OPENBLAS_NUM_THREADS", "1")
         .env("OMP_NUM_THREADS", "1")
@@ -336,7 +351,11 @@ fn main() {
     std::fs::create_dir_all(&folder).expect("temporary folder");
     print_machine();
 
-    let statsmodels_version = if with_statsmodels { statsmodels_available() } else { None };
+    let statsmodels_version = if with_statsmodels {
+        statsmodels_available()
+    } else {
+        None
+    };
     match &statsmodels_version {
         Some(version) => println!("statsmodels {version} found; timing both sides."),
         None => println!(
@@ -397,12 +416,15 @@ fn main() {
         for &(model, previous_n, previous_p, seconds) in
             previous_statsmodels.iter().filter(|_| n > 100_000)
         {
-            let projected = seconds * (n as f64 / previous_n as f64) * (p as f64 / previous_p as f64).powi(2);
+            let projected =
+                seconds * (n as f64 / previous_n as f64) * (p as f64 / previous_p as f64).powi(2);
             if projected > STATSMODELS_BUDGET_SECONDS {
                 skip.push(model.to_string());
                 skip_reason.insert(
                     model,
-                    format!("skipped: projected {projected:.0} s (> {STATSMODELS_BUDGET_SECONDS:.0} s)"),
+                    format!(
+                        "skipped: projected {projected:.0} s (> {STATSMODELS_BUDGET_SECONDS:.0} s)"
+                    ),
                 );
             }
         }
@@ -518,11 +540,17 @@ fn print_machine() {
         .unwrap_or_else(|| "unknown".to_string());
     let memory = std::fs::read_to_string("/proc/meminfo")
         .ok()
-        .and_then(|text| text.lines().next().map(|l| l.split_whitespace().nth(1).unwrap_or("?").to_string()))
+        .and_then(|text| {
+            text.lines()
+                .next()
+                .map(|l| l.split_whitespace().nth(1).unwrap_or("?").to_string())
+        })
         .and_then(|kb| kb.parse::<f64>().ok())
         .map(|kb| format!("{:.1} GiB", kb / 1048576.0))
         .unwrap_or_else(|| "unknown".to_string());
-    let threads = std::thread::available_parallelism().map(|v| v.get()).unwrap_or(0);
+    let threads = std::thread::available_parallelism()
+        .map(|v| v.get())
+        .unwrap_or(0);
     println!("machine: {threads} hardware threads, CPU {cpu}, memory {memory}");
 }
 
@@ -580,7 +608,10 @@ fn print_flop_table(rows: &[Row]) {
     println!("| n | p | model | iterations | n·p² | GFLOP/s |");
     println!("|---:|---:|---|---:|---:|---:|");
     for row in rows.iter().filter(|r| {
-        matches!(r.model, "linear" | "binomial" | "poisson" | "negative-binomial")
+        matches!(
+            r.model,
+            "linear" | "binomial" | "poisson" | "negative-binomial"
+        )
     }) {
         let work = row.n as f64 * (row.p * row.p) as f64;
         println!(
@@ -613,12 +644,20 @@ fn run_cairn(plan: &Path, out: &Path) -> ChildCost {
     let use_time = Path::new("/usr/bin/time").exists();
     let mut command = if use_time {
         let mut command = Command::new("/usr/bin/time");
-        command.arg("-f").arg("BENCH-COST %e %U %S %M").arg(cairn_binary());
+        command
+            .arg("-f")
+            .arg("BENCH-COST %e %U %S %M")
+            .arg(cairn_binary());
         command
     } else {
         Command::new(cairn_binary())
     };
-    command.arg("run").arg(plan).arg("--out").arg(out).arg("--force");
+    command
+        .arg("run")
+        .arg(plan)
+        .arg("--out")
+        .arg(out)
+        .arg("--force");
     let start = Instant::now();
     let output = command.output().expect("run cairn");
     let wall = start.elapsed().as_secs_f64();
@@ -627,7 +666,11 @@ fn run_cairn(plan: &Path, out: &Path) -> ChildCost {
         .lines()
         .rev()
         .find_map(|l| l.strip_prefix("BENCH-COST "))
-        .map(|l| l.split_whitespace().filter_map(|v| v.parse().ok()).collect())
+        .map(|l| {
+            l.split_whitespace()
+                .filter_map(|v| v.parse().ok())
+                .collect()
+        })
         .unwrap_or_default();
     ChildCost {
         wall,
@@ -650,7 +693,10 @@ fn demo_plan_timing(folder: &Path) {
         cpus.extend(cost.cpu);
     }
     let cpu = if cpus.len() == 5 {
-        format!("; CPU (user + system, 10 ms resolution) median {:.2} s", median(&cpus))
+        format!(
+            "; CPU (user + system, 10 ms resolution) median {:.2} s",
+            median(&cpus)
+        )
     } else {
         String::new()
     };
@@ -688,14 +734,25 @@ fn large_plan(folder: &Path, n: usize, failures: &mut Vec<String>) {
         .as_array()
         .map(|a| {
             a.iter()
-                .map(|x| format!("{}: {}", x["id"].as_str().unwrap_or("?"), x["status"].as_str().unwrap_or("?")))
+                .map(|x| {
+                    format!(
+                        "{}: {}",
+                        x["id"].as_str().unwrap_or("?"),
+                        x["status"].as_str().unwrap_or("?")
+                    )
+                })
                 .collect()
         })
         .unwrap_or_default();
     if statuses.len() != 6 || statuses.iter().any(|s| !s.ends_with("fitted")) {
-        failures.push(format!("the {n}-subject plan did not fit all six analyses: {statuses:?}"));
+        failures.push(format!(
+            "the {n}-subject plan did not fit all six analyses: {statuses:?}"
+        ));
     }
-    let cpu = cost.cpu.map(|c| format!(", CPU {c:.2} s")).unwrap_or_default();
+    let cpu = cost
+        .cpu
+        .map(|c| format!(", CPU {c:.2} s"))
+        .unwrap_or_default();
     println!(
         "\n{n}-subject, {sites}-site, six-analysis plan end to end (one run): wall {seconds:.2} s{cpu}; analyses {statuses:?}"
     );

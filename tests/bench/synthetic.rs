@@ -203,7 +203,8 @@ pub fn generate(n_subjects: usize, n_sites: usize, seed: u64) -> Trial {
         let mut weights = [1.0; N_NOMINAL];
         for (k, weight) in weights.iter_mut().enumerate().skip(1) {
             let k_f = k as f64;
-            let eta = -0.5 + 0.2 * k_f - 0.25 * k_f * arm as f64 + 0.02 * k_f * centred
+            let eta = -0.5 + 0.2 * k_f - 0.25 * k_f * arm as f64
+                + 0.02 * k_f * centred
                 + if k == 1 { s } else { 0.0 };
             *weight = eta.exp();
         }
@@ -233,9 +234,7 @@ impl Trial {
     /// text, so both sides fit exactly the same doubles.
     pub fn to_csv(&self) -> String {
         let mut text = String::with_capacity(self.len() * 80);
-        text.push_str(
-            "site,arm,baseline,linear,binary,count,exposure,nb_count,ordinal,nominal\n",
-        );
+        text.push_str("site,arm,baseline,linear,binary,count,exposure,nb_count,ordinal,nominal\n");
         for i in 0..self.len() {
             let _ = writeln!(
                 text,

@@ -17,7 +17,10 @@ pub struct Scratch {
 impl Scratch {
     pub fn new(label: &str) -> Scratch {
         let unique = COUNTER.fetch_add(1, Ordering::SeqCst);
-        let path = std::env::temp_dir().join(format!("cairn-test-{label}-{}-{unique}", std::process::id()));
+        let path = std::env::temp_dir().join(format!(
+            "cairn-test-{label}-{}-{unique}",
+            std::process::id()
+        ));
         let _ = std::fs::remove_dir_all(&path);
         std::fs::create_dir_all(&path).expect("create scratch folder");
         Scratch { path }
@@ -86,7 +89,11 @@ pub fn cairn_with_env(folder: &Path, arguments: &[&str], environment: &[(&str, &
 
 /// Relative difference |a − b| / |b| (absolute when b is 0).
 pub fn relative_error(actual: f64, expected: f64) -> f64 {
-    if expected == 0.0 { actual.abs() } else { ((actual - expected) / expected).abs() }
+    if expected == 0.0 {
+        actual.abs()
+    } else {
+        ((actual - expected) / expected).abs()
+    }
 }
 
 pub fn read_json(path: &Path) -> serde_json::Value {

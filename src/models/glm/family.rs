@@ -12,8 +12,8 @@
 #[allow(unused_imports)]
 use crate::models::portable::Portable;
 use libm::erfc;
-use statrs::function::erf::erfc_inv;
 use libm::lgamma as ln_gamma;
+use statrs::function::erf::erfc_inv;
 
 use super::{Family, Link};
 
@@ -263,7 +263,7 @@ fn x_log_x_over(y: f64, mu: f64) -> f64 {
 }
 
 /// The full log-likelihood with all constants, matching R's `logLik` for `glm` and
-/// `MASS::glm.nb` fits:
+/// fits by the MASS package's negative-binomial routine:
 /// - binomial: sum of log dbinom(round(m y), round(m), mu), m the prior weight (trials);
 /// - Poisson: sum of w (y log mu - mu - lgamma(y + 1));
 /// - negative binomial: sum of w (lgamma(theta + y) - lgamma(theta) - lgamma(y + 1)

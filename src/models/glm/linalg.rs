@@ -33,9 +33,8 @@ pub(crate) fn weighted_cross_product(
     while block_start < n_rows {
         let block_end = (block_start + ROW_BLOCK).min(n_rows);
         let block_weights = &weights[block_start..block_end];
-        let column_values = |column: usize| {
-            &data[column * n_rows + block_start..column * n_rows + block_end]
-        };
+        let column_values =
+            |column: usize| &data[column * n_rows + block_start..column * n_rows + block_end];
         for (a, &column_a) in active.iter().enumerate() {
             let column_a_values = column_values(column_a);
             // Eight entries of row a at once: their sums are independent chains, so the

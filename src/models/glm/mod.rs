@@ -161,7 +161,7 @@ impl<'a> GlmData<'a> {
 #[derive(Debug, Clone, PartialEq)]
 pub struct ThetaEstimate {
     pub theta: f64,
-    /// 1/√(observed information for θ at the final means), as `MASS::glm.nb` reports it; `None`
+    /// 1/√(observed information for θ at the final means), as the MASS package's negative-binomial fit reports it; `None`
     /// when θ was fixed by the caller.
     pub standard_error: Option<f64>,
 }

@@ -6,7 +6,7 @@
 //! References: Lawless (1987), "Negative binomial and mixed Poisson regression", Canadian
 //! Journal of Statistics 15:209–225 (score and information for θ); Venables & Ripley (2002),
 //! *Modern Applied Statistics with S*, 4th ed., §7.4 (the moment start n / Σ w (y/μ − 1)² and the
-//! alternation used by `MASS::glm.nb`); Abramowitz & Stegun (1964), 6.4.6 and 6.4.12 (trigamma
+//! alternation used by the MASS package's negative-binomial fit); Abramowitz & Stegun (1964), 6.4.6 and 6.4.12 (trigamma
 //! recurrence and asymptotic series).
 
 #[allow(unused_imports)]

@@ -5,7 +5,7 @@
 //! critical value. This is the signed-root statistic z(b) = sign(b − β̂) √((D(b) − D̂)/φ) that
 //! `MASS:::profile.glm` computes and `MASS:::confint.profile.glm` inverts at normal quantiles
 //! (for every family, including those with estimated dispersion); for the negative binomial θ
-//! stays fixed at its estimate, as when MASS profiles a `glm.nb` fit. MASS interpolates a spline
+//! stays fixed at its estimate, as when MASS profiles its negative-binomial fit. MASS interpolates a spline
 //! through a grid of z values; this file finds the roots themselves with Brent's bracketed
 //! method. It owns no quantile computation and must not change the fit it is given.
 //!
