@@ -378,3 +378,38 @@ fn filip_matches_exact_solution_of_the_double_problem() {
     println!("Filip vs exact solution of the double problem: worst relative error {worst:.2e}");
     assert!(worst < 1e-13, "worst relative error {worst:e}");
 }
+
+// Source: NIST StRD Norris, Pontius and Longley designs. On a well-conditioned
+// design the covariance is taken from R⁻¹R⁻ᵀ without refinement; both routes
+// must agree to far below the digits a report shows (tolerance 1e-12
+// relative, common practice for double precision on designs of κ ≤ 1e3).
+#[test]
+fn covariance_without_refinement_agrees_with_refined_covariance() {
+    for name in ["Norris", "Pontius", "Longley", "Wampler1"] {
+        let dataset = read_dataset(name);
+        let (design, _) = design_for(name, &dataset.rows);
+        let response: Vec<f64> = dataset.rows.iter().map(|row| row[0]).collect();
+        let default =
+            fit_least_squares(&design, &response, &LeastSquaresOptions::default()).expect("fits");
+        let refined = fit_least_squares(
+            &design,
+            &response,
+            &LeastSquaresOptions {
+                always_refine_covariance: true,
+                ..LeastSquaresOptions::default()
+            },
+        )
+        .expect("fits");
+        for (a, b) in default
+            .unscaled_covariance
+            .iter()
+            .zip(refined.unscaled_covariance.iter())
+        {
+            let scale = b.abs().max(f64::MIN_POSITIVE);
+            assert!(
+                (a - b).abs() <= 1e-12 * scale,
+                "{name}: covariance entry {a:e} against refined {b:e}"
+            );
+        }
+    }
+}

@@ -498,12 +498,16 @@ fn check_covariates(
     column_names: &[String],
     fail: &dyn Fn(String) -> Error,
 ) -> Result<(), Error> {
-    use crate::models::linear::{LeastSquaresOptions, fit_least_squares};
+    use crate::models::linear::{LeastSquaresOptions, least_squares_residual_sum};
     let strata_columns: Vec<usize> = terms
         .iter()
         .filter(|term| term.kind == TermKind::Stratum)
         .flat_map(|term| term.first_column..term.first_column + term.column_count)
         .collect();
+    let n_strata_terms = terms
+        .iter()
+        .filter(|term| term.kind == TermKind::Stratum && term.column_count > 0)
+        .count();
     for term in terms.iter().filter(|term| term.kind == TermKind::Covariate) {
         if term.column_count == 0 {
             return Err(fail(format!(
@@ -524,19 +528,29 @@ fn check_covariates(
                 continue;
             }
             // Regress the column on the intercept and the strata; a residual of
-            // (numerically) zero means the strata determine it.
-            let mut predictors = vec![0usize];
-            predictors.extend(&strata_columns);
-            let design = matrix.select_columns(&predictors);
+            // (numerically) zero means the strata determine it. With one stratum the
+            // fit is the cell means, so the residual is the within-stratum sum of
+            // squares, found in two passes over the rows instead of a QR of n × levels.
             let response: Vec<f64> = values.iter().copied().collect();
-            if let Ok(fit) = fit_least_squares(&design, &response, &LeastSquaresOptions::default())
-            {
+            let residual = if n_strata_terms == 1 {
+                Ok(within_cell_sum_of_squares(
+                    matrix,
+                    &strata_columns,
+                    &response,
+                ))
+            } else {
+                let mut predictors = vec![0usize];
+                predictors.extend(&strata_columns);
+                let design = matrix.select_columns(&predictors);
+                least_squares_residual_sum(&design, &response, &LeastSquaresOptions::default())
+            };
+            if let Ok(residual_sum_of_squares) = residual {
                 let mean = response.iter().sum::<f64>() / response.len() as f64;
                 let total: f64 = response
                     .iter()
                     .map(|value| (value - mean) * (value - mean))
                     .sum();
-                if total > 0.0 && fit.residual_sum_of_squares <= 1e-20 * total {
+                if total > 0.0 && residual_sum_of_squares <= 1e-20 * total {
                     let strata: Vec<&str> = terms
                         .iter()
                         .filter(|term| term.kind == TermKind::Stratum)
@@ -553,4 +567,40 @@ fn check_covariates(
     }
     let _ = analysis;
     Ok(())
+}
+
+/// Σ (value − mean of its cell)² where the cell of a row is the dummy column of
+/// `cell_columns` that is non-zero in it, or the reference level when none is:
+/// the residual sum of squares of regressing `values` on one factor.
+fn within_cell_sum_of_squares(
+    matrix: &DMatrix<f64>,
+    cell_columns: &[usize],
+    values: &[f64],
+) -> f64 {
+    let n_rows = values.len();
+    let mut cells = vec![0usize; n_rows];
+    for (position, &column) in cell_columns.iter().enumerate() {
+        for (row, cell) in cells.iter_mut().enumerate() {
+            if matrix[(row, column)] != 0.0 {
+                *cell = position + 1;
+            }
+        }
+    }
+    let n_cells = cell_columns.len() + 1;
+    let mut sums = vec![0.0; n_cells];
+    let mut counts = vec![0usize; n_cells];
+    for (&cell, &value) in cells.iter().zip(values) {
+        sums[cell] += value;
+        counts[cell] += 1;
+    }
+    let means: Vec<f64> = sums
+        .iter()
+        .zip(&counts)
+        .map(|(&sum, &count)| if count > 0 { sum / count as f64 } else { 0.0 })
+        .collect();
+    cells
+        .iter()
+        .zip(values)
+        .map(|(&cell, &value)| (value - means[cell]) * (value - means[cell]))
+        .sum()
 }

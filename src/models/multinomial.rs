@@ -173,6 +173,7 @@ pub fn fit_multinomial_logit(
         linear_predictor: vec![0.0; n_free],
         probability: vec![0.0; n_free],
         x_row: vec![0.0; n_columns],
+        non_zero: Vec::new(),
     };
 
     // Starting values: a constant column carries the log marginal odds against the reference.
@@ -364,6 +365,8 @@ struct Workspace {
     linear_predictor: Vec<f64>,
     probability: Vec<f64>,
     x_row: Vec<f64>,
+    /// Columns whose entry in the current row is not zero, ascending.
+    non_zero: Vec<usize>,
 }
 
 impl Problem<'_> {
@@ -388,15 +391,23 @@ impl Problem<'_> {
             if weight == 0.0 {
                 continue;
             }
+            // Only the row's non-zero entries are visited: a zero entry would add ±0 to the
+            // linear predictor, the gradient and the Hessian, which leaves every sum unchanged
+            // bit for bit, and a row of treatment and site dummies has few non-zeros.
+            workspace.non_zero.clear();
             for c in 0..p {
-                workspace.x_row[c] = self.x[c * self.n_rows + row];
+                let value = self.x[c * self.n_rows + row];
+                workspace.x_row[c] = value;
+                if value != 0.0 {
+                    workspace.non_zero.push(c);
+                }
             }
             // Softmax with the reference's linear predictor 0, shifted by the maximum.
             let mut maximum: f64 = 0.0;
             for k in 0..n_free {
                 let offset = k * p;
                 let mut eta = 0.0;
-                for c in 0..p {
+                for &c in &workspace.non_zero {
                     eta += workspace.x_row[c] * parameters[offset + c];
                 }
                 workspace.linear_predictor[k] = eta;
@@ -432,7 +443,7 @@ impl Problem<'_> {
                     0.0
                 } - workspace.probability[k];
                 let offset = k * p;
-                for c in 0..p {
+                for &c in &workspace.non_zero {
                     workspace.gradient[offset + c] += weight * residual * workspace.x_row[c];
                 }
                 let pi_k = workspace.probability[k];
@@ -441,11 +452,11 @@ impl Problem<'_> {
                     let block_weight = -weight * pi_k * (if k == l { 1.0 } else { 0.0 } - pi_l);
                     let row_start = offset;
                     let column_start = l * p;
-                    for c in 0..p {
+                    for (position, &c) in workspace.non_zero.iter().enumerate() {
                         let scaled = block_weight * workspace.x_row[c];
                         let base = (row_start + c) * n_parameters + column_start;
-                        let first = if k == l { c } else { 0 };
-                        for d in first..p {
+                        let first = if k == l { position } else { 0 };
+                        for &d in &workspace.non_zero[first..] {
                             workspace.hessian[base + d] += scaled * workspace.x_row[d];
                         }
                     }
@@ -494,6 +505,7 @@ mod tests {
             linear_predictor: vec![0.0; 3],
             probability: vec![0.0; 3],
             x_row: vec![0.0; 3],
+            non_zero: Vec::new(),
         };
         let point: Vec<f64> = (0..n_parameters).map(|i| 0.2 * (i as f64) - 0.7).collect();
         problem

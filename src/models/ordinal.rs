@@ -978,6 +978,9 @@ struct Workspace {
     lower_derivative: Vec<f64>,
     combined: Vec<f64>,
     nominal_values: Vec<f64>,
+    /// Local positions that contribute in the current row: the cut-point and nominal
+    /// positions of the blocks present and the common columns whose value is not zero.
+    contributing: Vec<usize>,
 }
 
 enum Evaluation {
@@ -1120,20 +1123,28 @@ impl Problem<'_> {
                 workspace.combined[r] =
                     a * workspace.upper_derivative[r] - b * workspace.lower_derivative[r];
             }
+            // A common column whose value is zero in this row adds ±0 to every gradient and
+            // Hessian entry it touches (its derivatives are ±0 and all factors are finite),
+            // which leaves each sum unchanged bit for bit; skipping it makes the pass cost
+            // the square of the row's non-zeros (one site dummy of many) rather than of p.
+            workspace.contributing.clear();
             for r in 0..local_size {
-                let global_r = workspace.local_index[r];
-                if global_r == usize::MAX {
+                if workspace.local_index[r] == usize::MAX {
                     continue;
                 }
+                if r >= 2 * block && workspace.upper_derivative[r] == 0.0 {
+                    continue;
+                }
+                workspace.contributing.push(r);
+            }
+            for (position_r, &r) in workspace.contributing.iter().enumerate() {
+                let global_r = workspace.local_index[r];
                 let combined_r = workspace.combined[r];
                 workspace.gradient[global_r] += weight * combined_r;
                 let upper_r = a_prime * workspace.upper_derivative[r];
                 let lower_r = b_prime * workspace.lower_derivative[r];
-                for s in r..local_size {
+                for &s in &workspace.contributing[position_r..] {
                     let global_s = workspace.local_index[s];
-                    if global_s == usize::MAX {
-                        continue;
-                    }
                     let term = upper_r * workspace.upper_derivative[s]
                         - lower_r * workspace.lower_derivative[s]
                         - combined_r * workspace.combined[s];
@@ -1272,6 +1283,7 @@ fn fit_engine(
         lower_derivative: vec![0.0; local_size],
         combined: vec![0.0; local_size],
         nominal_values: vec![0.0; n_nominal],
+        contributing: Vec::new(),
     };
 
     // The scale of each parameter's gradient: a coefficient's score grows with its column.
@@ -1686,6 +1698,7 @@ mod tests {
             lower_derivative: vec![0.0; local_size],
             combined: vec![0.0; local_size],
             nominal_values: vec![0.0; n_nominal],
+            contributing: Vec::new(),
         };
         // Cut-points well apart, small effects: every row has a comfortably positive probability.
         let mut point = vec![0.0; n_parameters];
