@@ -181,13 +181,13 @@ fn run_plan(
         ),
         (
             inputs.plan.plan.data.subjects.clone(),
-            sha256_hex(&inputs.subjects_bytes),
+            inputs.subjects.sha256.clone(),
         ),
     ];
-    if let Some(bytes) = &inputs.allocation_bytes {
+    if let Some(digest) = &inputs.allocation {
         recorded.push((
             inputs.plan.plan.data.treatment.file.clone(),
-            sha256_hex(bytes),
+            digest.sha256.clone(),
         ));
     }
     audit::append(

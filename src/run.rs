@@ -46,15 +46,32 @@ impl Default for RunOptions {
     }
 }
 
-/// Everything read from disk for one run, with the raw bytes that were hashed.
+/// Everything read from disk for one run, with the digests of the data files
+/// (their bytes are hashed once when read and not kept).
 pub struct Inputs {
     pub plan: LoadedPlan,
     pub lock: Option<LoadedLock>,
     pub dry_run: Option<crate::provenance::dry_run::LoadedDryRun>,
-    pub subjects_bytes: Vec<u8>,
+    pub subjects: FileDigest,
     /// `None` in a dry run, which never reads the allocation file.
-    pub allocation_bytes: Option<Vec<u8>>,
+    pub allocation: Option<FileDigest>,
     pub data: StudyData,
+}
+
+/// The SHA-256 (lower-case hex) and length of a file's bytes as read.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct FileDigest {
+    pub sha256: String,
+    pub bytes: u64,
+}
+
+impl FileDigest {
+    fn of(bytes: &[u8]) -> FileDigest {
+        FileDigest {
+            sha256: sha256_hex(bytes),
+            bytes: bytes.len() as u64,
+        }
+    }
 }
 
 /// What `check` found, for its one-line summary.
@@ -79,12 +96,14 @@ pub fn load_inputs(plan_path: &Path, mode: Mode) -> Result<Inputs, Error> {
     let subjects_path = plan.resolve(&plan.plan.data.subjects)?;
     let subjects_bytes = data::read_file(&subjects_path, &plan.plan.data.subjects)?;
     let subjects = data::read_table(&subjects_bytes, &plan.plan.data.subjects)?;
-    let (allocation_bytes, allocation) = match mode {
+    let subjects_digest = FileDigest::of(&subjects_bytes);
+    drop(subjects_bytes);
+    let (allocation_digest, allocation) = match mode {
         Mode::Unblinded => {
             let allocation_path = plan.resolve(&plan.plan.data.treatment.file)?;
             let bytes = data::read_file(&allocation_path, &plan.plan.data.treatment.file)?;
             let table = data::read_table(&bytes, &plan.plan.data.treatment.file)?;
-            (Some(bytes), table)
+            (Some(FileDigest::of(&bytes)), table)
         }
         Mode::DryRun { seed } => (None, data::dummy_allocation(&plan.plan, &subjects, seed)),
     };
@@ -93,8 +112,8 @@ pub fn load_inputs(plan_path: &Path, mode: Mode) -> Result<Inputs, Error> {
         plan,
         lock,
         dry_run,
-        subjects_bytes,
-        allocation_bytes,
+        subjects: subjects_digest,
+        allocation: allocation_digest,
         data: study_data,
     })
 }
@@ -135,7 +154,7 @@ pub fn run(
             plan_path,
             &inputs.plan.bytes,
             &inputs.plan.plan.data.subjects,
-            &inputs.subjects_bytes,
+            &inputs.subjects.sha256,
             seed,
         )?;
     }
@@ -185,8 +204,8 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
         });
     }
     if let (Mode::Unblinded, Some(dry_run)) = (options.mode, &inputs.dry_run) {
-        let now = sha256_hex(&inputs.subjects_bytes);
-        if dry_run.record.subjects_sha256 != now {
+        let now = &inputs.subjects.sha256;
+        if &dry_run.record.subjects_sha256 != now {
             deviations.push(Deviation {
                 code: "DATA-CHANGED-SINCE-DRY-RUN",
                 severity: "major",
@@ -421,15 +440,15 @@ fn input_list(inputs: &Inputs) -> Vec<Input> {
     list.push(Input {
         role: "subjects",
         file: plan.data.subjects.clone(),
-        sha256: sha256_hex(&inputs.subjects_bytes),
-        bytes: inputs.subjects_bytes.len() as u64,
+        sha256: inputs.subjects.sha256.clone(),
+        bytes: inputs.subjects.bytes,
     });
-    if let Some(bytes) = &inputs.allocation_bytes {
+    if let Some(digest) = &inputs.allocation {
         list.push(Input {
             role: "allocation",
             file: plan.data.treatment.file.clone(),
-            sha256: sha256_hex(bytes),
-            bytes: bytes.len() as u64,
+            sha256: digest.sha256.clone(),
+            bytes: digest.bytes,
         });
     }
     if let Some(dry_run) = &inputs.dry_run {

@@ -52,15 +52,15 @@ pub fn dummy_allocation(plan: &Plan, subjects: &Table, seed: u64) -> Table {
     // does not depend on row order within the file beyond the shuffle.
     let mut strata: std::collections::BTreeMap<String, Vec<usize>> =
         std::collections::BTreeMap::new();
-    for (row, cells) in subjects.rows.iter().enumerate() {
+    for row in 0..subjects.n_rows() {
         let value = stratum_column
-            .map(|column| cells[column].trim().to_string())
+            .map(|column| subjects.cell(row, column).trim().to_string())
             .unwrap_or_default();
         strata.entry(value).or_default().push(row);
     }
     let n_arms = plan.data.treatment.arms.len();
     let mut generator = SplitMix64(seed ^ 0x6361_6972_6e2d_6472); // mixes in a constant so seed 0 is not special
-    let mut arm_of_row = vec![0usize; subjects.rows.len()];
+    let mut arm_of_row = vec![0usize; subjects.n_rows()];
     for rows in strata.values() {
         // Start the dealing at a random arm so small strata do not all favour the first arms.
         let offset = generator.below(n_arms);
@@ -75,25 +75,18 @@ pub fn dummy_allocation(plan: &Plan, subjects: &Table, seed: u64) -> Table {
             arm_of_row[*row] = arm;
         }
     }
-    let rows = subjects
-        .rows
-        .iter()
-        .zip(&arm_of_row)
-        .map(|(cells, &arm)| {
-            vec![
-                key_column
-                    .map(|column| cells[column].clone())
-                    .unwrap_or_default(),
-                plan.data.treatment.arms[arm].code.clone(),
-            ]
-        })
-        .collect();
-    Table {
-        file: dummy_allocation_name(seed),
-        headers: vec![plan.data.key.clone(), plan.data.treatment.column.clone()],
-        rows,
-        lines: subjects.lines.clone(),
+    let mut table = Table::new(
+        dummy_allocation_name(seed),
+        vec![plan.data.key.clone(), plan.data.treatment.column.clone()],
+    );
+    for (row, &arm) in arm_of_row.iter().enumerate() {
+        let key = key_column.map_or("", |column| subjects.cell(row, column));
+        table.push_row(
+            [key, plan.data.treatment.arms[arm].code.as_str()],
+            subjects.lines[row],
+        );
     }
+    table
 }
 
 #[cfg(test)]

@@ -147,11 +147,11 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
 
     // Arms of every allocation row, checked against the plan's levels.
     let mut arm_of_key: BTreeMap<&str, usize> = BTreeMap::new();
-    for (row, cells) in allocation.rows.iter().enumerate() {
-        let code = cells[arm_column].trim();
+    for row in 0..allocation.n_rows() {
+        let code = allocation.cell(row, arm_column).trim();
         match treatment.arms.iter().position(|arm| arm.code == code) {
             Some(arm) => {
-                arm_of_key.insert(cells[allocation_key].trim(), arm);
+                arm_of_key.insert(allocation.cell(row, allocation_key).trim(), arm);
             }
             None => {
                 let levels: Vec<&str> =
@@ -226,7 +226,7 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
         .collect();
     let subject_ids: Vec<String> = matched_rows
         .iter()
-        .map(|row| subjects.rows[*row][subject_key].trim().to_string())
+        .map(|row| subjects.cell(*row, subject_key).trim().to_string())
         .collect();
     let arms: Vec<usize> = subject_ids
         .iter()
@@ -267,8 +267,8 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
         }
     }
     let join = JoinSummary {
-        subjects_rows: subjects.rows.len(),
-        allocation_rows: allocation.rows.len(),
+        subjects_rows: subjects.n_rows(),
+        allocation_rows: allocation.n_rows(),
         matched: subject_ids.len(),
         only_in_subjects,
         only_in_allocation,
@@ -314,9 +314,9 @@ fn require_column(
 /// Keys in file order with their row; duplicates and empty keys are problems.
 fn unique_keys(table: &Table, column: usize, collector: &mut Collector) -> Vec<(String, usize)> {
     let mut first_line: BTreeMap<&str, usize> = BTreeMap::new();
-    let mut keys = Vec::with_capacity(table.rows.len());
-    for (row, cells) in table.rows.iter().enumerate() {
-        let key = cells[column].trim();
+    let mut keys = Vec::with_capacity(table.n_rows());
+    for row in 0..table.n_rows() {
+        let key = table.cell(row, column).trim();
         if key.is_empty() {
             collector.push(
                 Problem::new(ErrorKind::DataValue, "the subject key is empty")
@@ -348,7 +348,7 @@ fn type_column(
     missing_codes: &[String],
     collector: &mut Collector,
 ) -> Column {
-    let cell = |row: usize| table.rows[row][column].trim();
+    let cell = |row: usize| table.cell(row, column).trim();
     let is_missing = |text: &str| missing_codes.iter().any(|code| code.trim() == text);
     match kind {
         VariableKind::Numeric | VariableKind::Count => {

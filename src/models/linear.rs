@@ -354,7 +354,7 @@ fn fit(
     }
 
     let (scaled_columns, column_scales) = equilibrate(design);
-    let factorization = PivotedQr::new(&scaled_columns, options.rank_tolerance);
+    let factorization = PivotedQr::new(scaled_columns, options.rank_tolerance);
     let rank = factorization.kept.len();
     if rank == 0 {
         return Err(LeastSquaresError::NoEstimableColumns { n_columns });
@@ -365,11 +365,15 @@ fn fit(
             rank,
         });
     }
-    let kept_columns: Vec<&[f64]> = factorization
-        .kept
-        .iter()
-        .map(|&column| scaled_columns[column].as_slice())
-        .collect();
+    let kept_columns = KeptColumns {
+        data: design.as_slice(),
+        n_rows: n_observations,
+        columns: factorization
+            .kept
+            .iter()
+            .map(|&column| (column, column_scales[column]))
+            .collect(),
+    };
 
     // Coefficients of the scaled, reduced problem: b = y, c = 0.
     let solution = refined_augmented_solve(
@@ -566,18 +570,19 @@ struct PivotedQr {
     aliased: Vec<usize>,
     /// Upper-triangular factor, `rank × rank`, row-major by `[row][column]`.
     triangular: Vec<Vec<f64>>,
-    reflector_vectors: Vec<Vec<f64>>,
+    /// The reduced columns: for the accepted column in pivot position `t`, rows
+    /// `t..n` hold the Householder vector `v_t`; aliased columns are emptied.
+    work: Vec<Vec<f64>>,
     reflector_betas: Vec<f64>,
 }
 
 impl PivotedQr {
-    fn new(scaled_columns: &[Vec<f64>], rank_tolerance: f64) -> PivotedQr {
+    fn new(scaled_columns: Vec<Vec<f64>>, rank_tolerance: f64) -> PivotedQr {
         let n_observations = scaled_columns.first().map_or(0, Vec::len);
-        let mut work: Vec<Vec<f64>> = scaled_columns.to_vec();
+        let mut work: Vec<Vec<f64>> = scaled_columns;
         let mut kept = Vec::new();
         let mut aliased = Vec::new();
         let mut upper_columns: Vec<Vec<f64>> = Vec::new();
-        let mut reflector_vectors = Vec::new();
         let mut reflector_betas = Vec::new();
 
         for column in 0..work.len() {
@@ -593,6 +598,7 @@ impl PivotedQr {
             };
             if own_norm == 0.0 || remaining_norm <= rank_tolerance * own_norm {
                 aliased.push(column);
+                work[column] = Vec::new();
                 continue;
             }
             let pivot_part = &work[column][step..];
@@ -616,7 +622,7 @@ impl PivotedQr {
                 apply_reflector(&vector, beta, &mut later_column[step..]);
             }
             kept.push(column);
-            reflector_vectors.push(vector);
+            work[column][step..].copy_from_slice(&vector);
             reflector_betas.push(beta);
         }
 
@@ -632,9 +638,14 @@ impl PivotedQr {
             kept,
             aliased,
             triangular,
-            reflector_vectors,
+            work,
             reflector_betas,
         }
+    }
+
+    /// Householder vector of pivot position `step` (rows `step..n`).
+    fn reflector(&self, step: usize) -> &[f64] {
+        &self.work[self.kept[step]][step..]
     }
 
     /// Solves `[I A; Aᵀ 0] [r; x] = [f; g]` for the accepted columns `A`,
@@ -645,7 +656,7 @@ impl PivotedQr {
         let mut rotated = f.to_vec();
         for step in 0..rank {
             apply_reflector(
-                &self.reflector_vectors[step],
+                self.reflector(step),
                 self.reflector_betas[step],
                 &mut rotated[step..],
             );
@@ -672,7 +683,7 @@ impl PivotedQr {
         r[..rank].copy_from_slice(&e_top);
         for step in (0..rank).rev() {
             apply_reflector(
-                &self.reflector_vectors[step],
+                self.reflector(step),
                 self.reflector_betas[step],
                 &mut r[step..],
             );
@@ -690,6 +701,16 @@ fn apply_reflector(vector: &[f64], beta: f64, target: &mut [f64]) {
     }
 }
 
+/// The accepted columns of the equilibrated design, read from the caller's
+/// column-major design and scaled on the fly (a power of two, so exactly the
+/// values the factorization started from) instead of being kept as a copy.
+struct KeptColumns<'a> {
+    data: &'a [f64],
+    n_rows: usize,
+    /// (design column, its power-of-two scale), in pivot order.
+    columns: Vec<(usize, f64)>,
+}
+
 struct AugmentedSolution {
     x: Vec<f64>,
     refinement_steps: usize,
@@ -703,7 +724,7 @@ struct AugmentedSolution {
 /// loop ends when the correction is below one unit of rounding of `x`.
 fn refined_augmented_solve(
     factorization: &PivotedQr,
-    kept_columns: &[&[f64]],
+    kept_columns: &KeptColumns,
     b: &[f64],
     c: &[f64],
     max_refinement_steps: usize,
@@ -720,19 +741,23 @@ fn refined_augmented_solve(
             let mut accumulator = DoubleDouble::zero();
             accumulator.add(b[row]);
             accumulator.add(-r[row]);
-            for (position, column) in kept_columns.iter().enumerate() {
-                accumulator.add_product(-column[row], x[position]);
+            for (position, &(column, scale)) in kept_columns.columns.iter().enumerate() {
+                let value = kept_columns.data[column * kept_columns.n_rows + row] * scale;
+                accumulator.add_product(-value, x[position]);
             }
             f[row] = accumulator.value();
         }
         let g: Vec<f64> = kept_columns
+            .columns
             .iter()
             .enumerate()
-            .map(|(position, column)| {
+            .map(|(position, &(column, scale))| {
+                let values = &kept_columns.data
+                    [column * kept_columns.n_rows..(column + 1) * kept_columns.n_rows];
                 let mut accumulator = DoubleDouble::zero();
                 accumulator.add(c[position]);
                 for row in 0..n_observations {
-                    accumulator.add_product(-column[row], r[row]);
+                    accumulator.add_product(-(values[row] * scale), r[row]);
                 }
                 accumulator.value()
             })

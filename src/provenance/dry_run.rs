@@ -65,12 +65,13 @@ pub fn read(plan_path: &Path) -> Result<Option<LoadedDryRun>, Error> {
     }))
 }
 
-/// Write the record for a dry run of `plan_bytes` on `subjects_bytes`.
+/// Write the record for a dry run of `plan_bytes` on the subjects file whose
+/// SHA-256 is `subjects_sha256`.
 pub fn write(
     plan_path: &Path,
     plan_bytes: &[u8],
     subjects_file: &str,
-    subjects_bytes: &[u8],
+    subjects_sha256: &str,
     seed: u64,
 ) -> Result<(), Error> {
     let record = DryRunRecord {
@@ -78,7 +79,7 @@ pub fn write(
         seed,
         plan_sha256: sha256_hex(plan_bytes),
         subjects_file: subjects_file.to_string(),
-        subjects_sha256: sha256_hex(subjects_bytes),
+        subjects_sha256: subjects_sha256.to_string(),
         tool_version: super::TOOL_VERSION.to_string(),
     };
     let text = serde_yaml::to_string(&record).map_err(|cause| {

@@ -108,20 +108,22 @@ fn dense_weighted_cross_product(
     (cross, vector)
 }
 
-/// Whether at most a third of the active entries are non-zero (a design of treatment,
-/// site and stratum dummies beside a few covariates), in which case the row-wise pass of
-/// [`sparse_weighted_cross_product`] does far less work than the dense one.
+/// Whether at most a third of the active entries of the first rows are non-zero (a design
+/// of treatment, site and stratum dummies beside a few covariates), in which case the
+/// row-wise pass of [`sparse_weighted_cross_product`] does far less work than the dense one.
+/// Both passes give the same bits, so a sample of rows decides only the speed.
 fn is_sparse(data: &[f64], n_rows: usize, active: &[usize]) -> bool {
+    let sample = n_rows.min(4 * ROW_BLOCK);
     let non_zero: usize = active
         .iter()
         .map(|&column| {
-            data[column * n_rows..(column + 1) * n_rows]
+            data[column * n_rows..column * n_rows + sample]
                 .iter()
                 .filter(|&&x| x != 0.0)
                 .count()
         })
         .sum();
-    3 * non_zero <= n_rows * active.len()
+    3 * non_zero <= sample * active.len()
 }
 
 /// The same sums as the dense pass of [`weighted_cross_product`], bit for bit: rows are
@@ -146,24 +148,37 @@ fn sparse_weighted_cross_product(
     let mut partial_vector = vec![0.0_f64; n_active];
     let mut touched = vec![false; n_active * n_active];
     let mut touched_list: Vec<usize> = Vec::with_capacity(n_active * n_active);
-    let mut row_positions: Vec<usize> = Vec::with_capacity(n_active);
-    let mut row_values: Vec<f64> = Vec::with_capacity(n_active);
+    // The non-zeros of each row of a block, gathered column by column (contiguous reads of
+    // each column's block slice) so that each row's list is in ascending column order.
+    let mut row_counts = vec![0usize; ROW_BLOCK];
+    let mut row_positions = vec![0usize; ROW_BLOCK * n_active];
+    let mut row_values = vec![0.0_f64; ROW_BLOCK * n_active];
     let mut block_start = 0;
     while block_start < n_rows {
         let block_end = (block_start + ROW_BLOCK).min(n_rows);
-        for row in block_start..block_end {
-            row_positions.clear();
-            row_values.clear();
-            for (a, &column) in active.iter().enumerate() {
-                let x = data[column * n_rows + row];
+        let block_length = block_end - block_start;
+        row_counts[..block_length]
+            .iter_mut()
+            .for_each(|count| *count = 0);
+        for (a, &column) in active.iter().enumerate() {
+            let values = &data[column * n_rows + block_start..column * n_rows + block_end];
+            for (offset, &x) in values.iter().enumerate() {
                 if x != 0.0 {
-                    row_positions.push(a);
-                    row_values.push(x);
+                    let slot = offset * n_active + row_counts[offset];
+                    row_positions[slot] = a;
+                    row_values[slot] = x;
+                    row_counts[offset] += 1;
                 }
             }
+        }
+        for offset in 0..block_length {
+            let row = block_start + offset;
+            let count = row_counts[offset];
+            let positions = &row_positions[offset * n_active..offset * n_active + count];
+            let values = &row_values[offset * n_active..offset * n_active + count];
             let w = weights[row];
-            for (i, (&a, &x_a)) in row_positions.iter().zip(&row_values).enumerate() {
-                for (&b, &x_b) in row_positions[i..].iter().zip(&row_values[i..]) {
+            for (i, (&a, &x_a)) in positions.iter().zip(values).enumerate() {
+                for (&b, &x_b) in positions[i..].iter().zip(&values[i..]) {
                     let index = a * n_active + b;
                     if !touched[index] {
                         touched[index] = true;
