@@ -771,6 +771,51 @@ fn variance_function(family: Family, mean: f64) -> Option<f64> {
 /// The M-estimation (influence-function) covariance of the arm means: with the per-row score
 /// s_i = x_i (y_i − μ_i) h′(η_i)/V(μ_i) and B = (1/n) Σ_i x_i x_iᵀ h′(η_i)²/V(μ_i),
 /// ψ_ia = (m_ia − μ̂_a) + D_a B⁻¹ s_i and V̂ = (1/n²) Σ_i ψ_i ψ_iᵀ (module documentation).
+/// Σᵢ wᵢ xᵢₐ xᵢᵦ for a ≤ b (row-major upper triangle), each entry summed over the rows in
+/// order as (wᵢ · xᵢₐ) · xᵢᵦ starting from zero, visiting only each row's non-zero entries: a
+/// skipped term would add ±0, so the result is bit for bit the plain triple loop's, at the
+/// cost of the squared non-zeros of a row (one site dummy of many) rather than of p.
+fn weighted_cross_totals(design: &DMatrix<f64>, weights: &[f64]) -> Vec<f64> {
+    const BLOCK: usize = 256;
+    let (n_rows, n_columns) = design.shape();
+    let data = design.as_slice();
+    let mut totals = vec![0.0; n_columns * n_columns];
+    let mut counts = vec![0usize; BLOCK];
+    let mut positions = vec![0usize; BLOCK * n_columns];
+    let mut values = vec![0.0_f64; BLOCK * n_columns];
+    let mut block_start = 0;
+    while block_start < n_rows {
+        let block_end = (block_start + BLOCK).min(n_rows);
+        counts.iter_mut().for_each(|count| *count = 0);
+        // Column by column, so that each column's slice is read contiguously and each row's
+        // list comes out in ascending column order.
+        for column in 0..n_columns {
+            let slice = &data[column * n_rows + block_start..column * n_rows + block_end];
+            for (offset, &x) in slice.iter().enumerate() {
+                if x != 0.0 {
+                    let slot = offset * n_columns + counts[offset];
+                    positions[slot] = column;
+                    values[slot] = x;
+                    counts[offset] += 1;
+                }
+            }
+        }
+        for offset in 0..block_end - block_start {
+            let w = weights[block_start + offset];
+            let start = offset * n_columns;
+            let row_positions = &positions[start..start + counts[offset]];
+            let row_values = &values[start..start + counts[offset]];
+            for (i, (&a, &x_a)) in row_positions.iter().zip(row_values).enumerate() {
+                for (&b, &x_b) in row_positions[i..].iter().zip(&row_values[i..]) {
+                    totals[a * n_columns + b] += w * x_a * x_b;
+                }
+            }
+        }
+        block_start = block_end;
+    }
+    totals
+}
+
 fn influence_function_covariance(
     input: &MarginalInput,
     base_predictor: &[f64],
@@ -807,13 +852,11 @@ fn influence_function_covariance(
         working_weights[row] = derivative * derivative / variance;
         score_multipliers[row] = (input.response[row] - mean) * derivative / variance;
     }
+    let totals = weighted_cross_totals(design, &working_weights);
     let mut information = DMatrix::<f64>::zeros(n_columns, n_columns);
     for first in 0..n_columns {
         for second in first..n_columns {
-            let mut total = 0.0;
-            for row in 0..n_rows {
-                total += working_weights[row] * design[(row, first)] * design[(row, second)];
-            }
+            let total = totals[first * n_columns + second];
             information[(first, second)] = total / n;
             information[(second, first)] = total / n;
         }

@@ -15,7 +15,7 @@ use super::family::{Kernel, log_likelihood};
 use super::irls::{
     IrlsOutcome, IrlsStatus, Problem, Tolerances, max_standardised_score, total_deviance,
 };
-use super::linalg::{ScaledCholesky, linear_predictor_into, weighted_cross_product};
+use super::linalg::{ScaledCholesky, linear_predictor_into, weighted_cross_product_from};
 use super::{Estimation, ThetaEstimate};
 
 const MAX_HALVINGS: usize = 30;
@@ -55,7 +55,13 @@ fn evaluate(
         .zip(problem.weights)
         .map(|(&mu, &m)| if m > 0.0 { m * mu * (1.0 - mu) } else { 0.0 })
         .collect();
-    let (information, _) = weighted_cross_product(problem.design, active, &binomial_weights, None);
+    let (information, _) = weighted_cross_product_from(
+        problem.design,
+        problem.sparse_rows,
+        active,
+        &binomial_weights,
+        None,
+    );
     let factor = ScaledCholesky::new(&information)?;
     let deviance = total_deviance(kernel, problem, &means);
     let penalised = log_likelihood(kernel, problem.response, &means, problem.weights, deviance)

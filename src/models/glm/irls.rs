@@ -15,7 +15,8 @@ use nalgebra::{DMatrix, DVector};
 
 use super::family::{Distribution, Kernel, compensated_sum};
 use super::linalg::{
-    ScaledCholesky, linear_predictor_into, transpose_multiply, weighted_cross_product,
+    ScaledCholesky, SparseRows, linear_predictor_into, transpose_multiply,
+    weighted_cross_product_from,
 };
 
 /// The number of halvings tried before a step is abandoned.
@@ -31,6 +32,9 @@ const BOUNDARY_PROBABILITY: f64 = 1e-8;
 /// Problem data shared by every IRLS call on one dataset.
 pub(crate) struct Problem<'a> {
     pub(crate) design: &'a DMatrix<f64>,
+    /// The design's non-zeros by row, when it is sparse (built once per fit); must describe
+    /// `design` (the cross-product checks the shape and otherwise ignores it).
+    pub(crate) sparse_rows: Option<&'a SparseRows>,
     pub(crate) response: &'a [f64],
     pub(crate) weights: &'a [f64],
     pub(crate) offset: &'a [f64],
@@ -190,8 +194,9 @@ pub(crate) fn run_irls(
                 "working weights or working responses became non-finite".to_string(),
             );
         }
-        let (cross, right) = weighted_cross_product(
+        let (cross, right) = weighted_cross_product_from(
             problem.design,
+            problem.sparse_rows,
             active,
             &working_weights,
             Some(&working_response),
@@ -251,8 +256,13 @@ pub(crate) fn run_irls(
                         0.0
                     };
                 }
-                let (observed, _) =
-                    weighted_cross_product(problem.design, active, &observed_weights, None);
+                let (observed, _) = weighted_cross_product_from(
+                    problem.design,
+                    problem.sparse_rows,
+                    active,
+                    &observed_weights,
+                    None,
+                );
                 ScaledCholesky::new(&observed)
                     .map(|observed_factor| current + observed_factor.solve(current_score))
             }
@@ -470,8 +480,9 @@ pub(crate) fn separation_columns(
         ) {
             break;
         }
-        let (cross, right) = weighted_cross_product(
+        let (cross, right) = weighted_cross_product_from(
             problem.design,
+            problem.sparse_rows,
             active,
             &working_weights,
             Some(&working_response),

@@ -27,7 +27,7 @@ pub(crate) fn weighted_cross_product(
     let n_rows = design.nrows();
     let data = design.as_slice();
     if is_sparse(data, n_rows, active) {
-        sparse_weighted_cross_product(design, active, weights, right_hand_side)
+        sparse_weighted_cross_product(design, None, active, weights, right_hand_side)
     } else {
         dense_weighted_cross_product(design, active, weights, right_hand_side)
     }
@@ -108,6 +108,76 @@ fn dense_weighted_cross_product(
     (cross, vector)
 }
 
+/// The non-zero entries of a design, row by row (compressed sparse rows), built once per
+/// fit when the design is sparse, so that every cross-product of the fit reads the few
+/// non-zeros of a row instead of scanning all p columns for them.
+pub(crate) struct SparseRows {
+    n_rows: usize,
+    n_columns: usize,
+    row_starts: Vec<usize>,
+    columns: Vec<u32>,
+    values: Vec<f64>,
+}
+
+impl SparseRows {
+    /// The rows of `design`, or `None` when it is not sparse enough to be worth it.
+    pub(crate) fn of(design: &DMatrix<f64>) -> Option<SparseRows> {
+        let (n_rows, n_columns) = design.shape();
+        let all: Vec<usize> = (0..n_columns).collect();
+        let data = design.as_slice();
+        if n_rows == 0 || n_columns > u32::MAX as usize || !is_sparse(data, n_rows, &all) {
+            return None;
+        }
+        let mut row_starts = vec![0usize; n_rows + 1];
+        for column in 0..n_columns {
+            let values = &data[column * n_rows..(column + 1) * n_rows];
+            for (count, &x) in row_starts[1..].iter_mut().zip(values) {
+                *count += usize::from(x != 0.0);
+            }
+        }
+        for row in 0..n_rows {
+            row_starts[row + 1] += row_starts[row];
+        }
+        let n_entries = row_starts[n_rows];
+        let mut columns = vec![0u32; n_entries];
+        let mut values = vec![0.0; n_entries];
+        let mut next = row_starts[..n_rows].to_vec();
+        for column in 0..n_columns {
+            let column_values = &data[column * n_rows..(column + 1) * n_rows];
+            for (row, &x) in column_values.iter().enumerate() {
+                if x != 0.0 {
+                    columns[next[row]] = column as u32;
+                    values[next[row]] = x;
+                    next[row] += 1;
+                }
+            }
+        }
+        Some(SparseRows {
+            n_rows,
+            n_columns,
+            row_starts,
+            columns,
+            values,
+        })
+    }
+}
+
+/// [`weighted_cross_product`], reading the non-zeros from `rows` when the fit built them.
+pub(crate) fn weighted_cross_product_from(
+    design: &DMatrix<f64>,
+    rows: Option<&SparseRows>,
+    active: &[usize],
+    weights: &[f64],
+    right_hand_side: Option<&[f64]>,
+) -> (DMatrix<f64>, DVector<f64>) {
+    match rows {
+        Some(rows) => {
+            sparse_weighted_cross_product(design, Some(rows), active, weights, right_hand_side)
+        }
+        None => weighted_cross_product(design, active, weights, right_hand_side),
+    }
+}
+
 /// Whether at most a third of the active entries of the first rows are non-zero (a design
 /// of treatment, site and stratum dummies beside a few covariates), in which case the
 /// row-wise pass of [`sparse_weighted_cross_product`] does far less work than the dense one.
@@ -134,10 +204,22 @@ fn is_sparse(data: &[f64], n_rows: usize, active: &[usize]) -> bool {
 /// non-zeros, not of p. Workspace is O(p²), independent of the number of rows.
 fn sparse_weighted_cross_product(
     design: &DMatrix<f64>,
+    rows: Option<&SparseRows>,
     active: &[usize],
     weights: &[f64],
     right_hand_side: Option<&[f64]>,
 ) -> (DMatrix<f64>, DVector<f64>) {
+    // The stored rows list columns in ascending order; they give the gathered order only
+    // when the active columns are ascending too.
+    let rows = rows.filter(|rows| {
+        rows.n_rows == design.nrows()
+            && rows.n_columns == design.ncols()
+            && active.windows(2).all(|pair| pair[0] < pair[1])
+    });
+    let mut position_of = vec![usize::MAX; design.ncols()];
+    for (a, &column) in active.iter().enumerate() {
+        position_of[column] = a;
+    }
     let n_rows = design.nrows();
     let n_active = active.len();
     let data = design.as_slice();
@@ -160,7 +242,21 @@ fn sparse_weighted_cross_product(
         row_counts[..block_length]
             .iter_mut()
             .for_each(|count| *count = 0);
-        for (a, &column) in active.iter().enumerate() {
+        if let Some(rows) = rows {
+            for offset in 0..block_length {
+                let row = block_start + offset;
+                for entry in rows.row_starts[row]..rows.row_starts[row + 1] {
+                    let a = position_of[rows.columns[entry] as usize];
+                    if a != usize::MAX {
+                        let slot = offset * n_active + row_counts[offset];
+                        row_positions[slot] = a;
+                        row_values[slot] = rows.values[entry];
+                        row_counts[offset] += 1;
+                    }
+                }
+            }
+        }
+        for (a, &column) in active.iter().enumerate().filter(|_| rows.is_none()) {
             let values = &data[column * n_rows + block_start..column * n_rows + block_end];
             for (offset, &x) in values.iter().enumerate() {
                 if x != 0.0 {
@@ -419,7 +515,19 @@ mod tests {
         let active: Vec<usize> = vec![0, 1, 2, 3, 5, 6, 7, 8, 9, 10, 11];
         assert!(is_sparse(design.as_slice(), n_rows, &active));
         let dense = dense_weighted_cross_product(&design, &active, &weights, Some(&response));
-        let sparse = sparse_weighted_cross_product(&design, &active, &weights, Some(&response));
+        let sparse =
+            sparse_weighted_cross_product(&design, None, &active, &weights, Some(&response));
+        let rows = SparseRows::of(&design).expect("a design of dummies is sparse");
+        let stored =
+            weighted_cross_product_from(&design, Some(&rows), &active, &weights, Some(&response));
+        for other in [&stored] {
+            for (a, b) in dense.0.iter().zip(other.0.iter()) {
+                assert_eq!(a.to_bits(), b.to_bits());
+            }
+            for (a, b) in dense.1.iter().zip(other.1.iter()) {
+                assert_eq!(a.to_bits(), b.to_bits());
+            }
+        }
         for (a, b) in dense.0.iter().zip(sparse.0.iter()) {
             assert_eq!(a.to_bits(), b.to_bits());
         }

@@ -40,7 +40,7 @@ use nalgebra::DMatrix;
 use crate::models::StopReason;
 use family::{Distribution, Kernel};
 use irls::{IrlsOutcome, IrlsStatus, Problem, Start, Tolerances, run_irls, separation_columns};
-use linalg::{ScaledCholesky, aliased_columns, weighted_cross_product};
+use linalg::{ScaledCholesky, SparseRows, aliased_columns, weighted_cross_product_from};
 
 pub use profile::{ProfileInterval, profile_interval};
 
@@ -309,6 +309,7 @@ const ALIASING_TOLERANCE: f64 = 1e-11;
 /// Checked inputs with defaults filled in.
 pub(crate) struct PreparedData<'a> {
     pub(crate) design: &'a DMatrix<f64>,
+    pub(crate) sparse_rows: Option<SparseRows>,
     pub(crate) response: &'a [f64],
     pub(crate) offset: Vec<f64>,
     pub(crate) weights: Vec<f64>,
@@ -318,6 +319,7 @@ impl PreparedData<'_> {
     pub(crate) fn problem(&self) -> Problem<'_> {
         Problem {
             design: self.design,
+            sparse_rows: self.sparse_rows.as_ref(),
             response: self.response,
             weights: &self.weights,
             offset: &self.offset,
@@ -460,6 +462,7 @@ pub(crate) fn prepare<'a>(
     }
     Ok(PreparedData {
         design,
+        sparse_rows: SparseRows::of(design),
         response: data.response,
         offset,
         weights,
@@ -469,7 +472,13 @@ pub(crate) fn prepare<'a>(
 /// The estimable columns: all columns minus those aliased on the prior-weighted cross-product.
 pub(crate) fn estimable_columns(prepared: &PreparedData) -> (Vec<usize>, Vec<usize>) {
     let all: Vec<usize> = (0..prepared.design.ncols()).collect();
-    let (cross, _) = weighted_cross_product(prepared.design, &all, &prepared.weights, None);
+    let (cross, _) = weighted_cross_product_from(
+        prepared.design,
+        prepared.sparse_rows.as_ref(),
+        &all,
+        &prepared.weights,
+        None,
+    );
     let aliased = aliased_columns(&cross, ALIASING_TOLERANCE);
     let active = all.into_iter().filter(|j| !aliased.contains(j)).collect();
     (active, aliased)
@@ -662,6 +671,7 @@ fn null_deviance(kernel: &Kernel, prepared: &PreparedData, options: &GlmOptions)
         let ones = DMatrix::<f64>::from_element(prepared.design.nrows(), 1, 1.0);
         let intercept_problem = Problem {
             design: &ones,
+            sparse_rows: None,
             ..problem
         };
         let outcome = run_irls(
@@ -776,7 +786,13 @@ fn assemble(
                     contribution * contribution
                 })
                 .collect();
-            let (meat, _) = weighted_cross_product(prepared.design, active, &squared_scores, None);
+            let (meat, _) = weighted_cross_product_from(
+                prepared.design,
+                prepared.sparse_rows.as_ref(),
+                active,
+                &squared_scores,
+                None,
+            );
             &inverse_information * meat * &inverse_information
         }
     };

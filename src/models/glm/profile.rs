@@ -143,6 +143,7 @@ impl Profiler<'_> {
             .collect();
         let problem = Problem {
             design: self.design,
+            sparse_rows: None,
             response: self.response,
             weights: self.weights,
             offset: &offset,
