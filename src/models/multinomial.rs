@@ -385,7 +385,7 @@ impl Problem<'_> {
             workspace.gradient.iter_mut().for_each(|v| *v = 0.0);
             workspace.hessian.iter_mut().for_each(|v| *v = 0.0);
         }
-        let mut log_likelihood = 0.0;
+        let mut log_likelihood = crate::models::CompensatedSum::default();
         for row in 0..self.n_rows {
             let weight = self.weights[row];
             if weight == 0.0 {
@@ -429,7 +429,7 @@ impl Problem<'_> {
                     .position(|&k| k == category)
             };
             let observed_eta = observed_position.map_or(0.0, |k| workspace.linear_predictor[k]);
-            log_likelihood += weight * (observed_eta - log_normaliser);
+            log_likelihood.add(weight * (observed_eta - log_normaliser));
             if !with_derivatives {
                 continue;
             }
@@ -463,6 +463,7 @@ impl Problem<'_> {
                 }
             }
         }
+        let log_likelihood = log_likelihood.value();
         log_likelihood.is_finite().then_some(log_likelihood)
     }
 }

@@ -1031,7 +1031,7 @@ impl Problem<'_> {
             workspace.gradient.iter_mut().for_each(|v| *v = 0.0);
             workspace.hessian.iter_mut().for_each(|v| *v = 0.0);
         }
-        let mut log_likelihood = 0.0;
+        let mut log_likelihood = crate::models::CompensatedSum::default();
         // Local layout: [upper block (theta_j, gamma_j)] [lower block] [common coefficients].
         let local_size = 2 * block + n_common;
         for position in 0..n_common {
@@ -1068,7 +1068,7 @@ impl Problem<'_> {
             if probability.is_nan() || probability <= 0.0 || !probability.is_finite() {
                 return Evaluation::Infeasible;
             }
-            log_likelihood += weight * probability.pln();
+            log_likelihood.add(weight * probability.pln());
             if !with_derivatives {
                 continue;
             }
@@ -1159,6 +1159,7 @@ impl Problem<'_> {
                 }
             }
         }
+        let log_likelihood = log_likelihood.value();
         if !log_likelihood.is_finite() {
             return Evaluation::Infeasible;
         }
