@@ -341,10 +341,15 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
             Some(offset)
         }
     };
-    let mut matrix = DMatrix::zeros(n, columns.len());
-    for (index, column) in columns.iter().enumerate() {
-        matrix.set_column(index, &nalgebra::DVector::from_column_slice(column));
+    // Column-major storage is the columns end to end. Each column is freed as soon as it is
+    // copied (a large allocation goes straight back to the system), so the design is held about
+    // once, not twice, while it is assembled.
+    let n_columns = columns.len();
+    let mut storage = Vec::with_capacity(n * n_columns);
+    for column in columns {
+        storage.extend_from_slice(&column);
     }
+    let matrix = DMatrix::from_vec(n, n_columns, storage);
     check_covariates(analysis, &terms, &matrix, &column_names, &fail)?;
     let arm_of_row = analysed.iter().map(|&row| data.arms[row]).collect();
     Ok(Design {
