@@ -177,6 +177,12 @@ pub fn read_table(bytes: &[u8], file: &str) -> Result<Table, Error> {
         first_column.insert(header.as_str(), index);
     }
     let mut table = Table::new(file.to_string(), headers);
+    // Reserve once, from the file's size and line count, rather than let the buffers double
+    // as rows arrive (each doubling briefly holds the old and the new buffer).
+    let line_count = text.bytes().filter(|&byte| byte == b'\n').count() + 1;
+    table.text.reserve_exact(text.len());
+    table.ends.reserve_exact(line_count * table.headers.len());
+    table.lines.reserve_exact(line_count);
     let mut record = csv::StringRecord::new();
     loop {
         match reader.read_record(&mut record) {

@@ -172,17 +172,14 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
 
     let only_in_subjects: Vec<String> = subject_rows
         .iter()
-        .filter(|(id, _)| !arm_of_key.contains_key(id.as_str()))
-        .map(|(id, _)| id.clone())
+        .filter(|(id, _)| !arm_of_key.contains_key(id))
+        .map(|(id, _)| id.to_string())
         .collect();
-    let subject_set: BTreeMap<&str, ()> = subject_rows
-        .iter()
-        .map(|(id, _)| (id.as_str(), ()))
-        .collect();
+    let subject_set: BTreeMap<&str, ()> = subject_rows.iter().map(|&(id, _)| (id, ())).collect();
     let only_in_allocation: Vec<String> = allocation_rows
         .iter()
-        .filter(|(id, _)| !subject_set.contains_key(id.as_str()))
-        .map(|(id, _)| id.clone())
+        .filter(|(id, _)| !subject_set.contains_key(id))
+        .map(|(id, _)| id.to_string())
         .collect();
     // A subject whose arm was rejected above would also count as unmatched;
     // saying so twice would bury the real problem.
@@ -221,7 +218,7 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
 
     let matched_rows: Vec<usize> = subject_rows
         .iter()
-        .filter(|(id, _)| arm_of_key.contains_key(id.as_str()))
+        .filter(|(id, _)| arm_of_key.contains_key(id))
         .map(|(_, row)| *row)
         .collect();
     let subject_ids: Vec<String> = matched_rows
@@ -312,7 +309,11 @@ fn require_column(
 }
 
 /// Keys in file order with their row; duplicates and empty keys are problems.
-fn unique_keys(table: &Table, column: usize, collector: &mut Collector) -> Vec<(String, usize)> {
+fn unique_keys<'a>(
+    table: &'a Table,
+    column: usize,
+    collector: &mut Collector,
+) -> Vec<(&'a str, usize)> {
     let mut first_line: BTreeMap<&str, usize> = BTreeMap::new();
     let mut keys = Vec::with_capacity(table.n_rows());
     for row in 0..table.n_rows() {
@@ -335,7 +336,7 @@ fn unique_keys(table: &Table, column: usize, collector: &mut Collector) -> Vec<(
             continue;
         }
         first_line.insert(key, table.lines[row]);
-        keys.push((key.to_string(), row));
+        keys.push((key, row));
     }
     keys
 }
