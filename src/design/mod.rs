@@ -205,7 +205,23 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
 
     let n = analysed.len();
     let mut column_names = vec!["(intercept)".to_string()];
-    let mut columns: Vec<Vec<f64>> = vec![vec![1.0; n]];
+    // At most one column per arm, per numeric covariate, and per level of each factor.
+    let column_bound = 1
+        + arms.len()
+        + analysis
+            .covariates
+            .iter()
+            .map(|&covariate| match &data.columns[covariate] {
+                Column::Numeric(_) => 1,
+                Column::Categorical { levels, .. } => levels.len(),
+            })
+            .sum::<usize>()
+        + strata_values
+            .iter()
+            .map(|(_, values)| values.levels.len())
+            .sum::<usize>();
+    let mut columns = ColumnStore::with_capacity(n, column_bound);
+    columns.push(std::iter::repeat_n(1.0, n));
     let mut terms = vec![Term {
         name: "(intercept)".to_string(),
         kind: TermKind::Intercept,
@@ -225,8 +241,7 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
         columns.push(
             analysed
                 .iter()
-                .map(|&row| f64::from(u8::from(data.arms[row] == arm_index)))
-                .collect(),
+                .map(|&row| f64::from(u8::from(data.arms[row] == arm_index))),
         );
         column_names.push(format!("treatment = {}", arm.label));
         column_terms.push(treatment_term);
@@ -244,12 +259,7 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
         let first = columns.len();
         match &data.columns[covariate] {
             Column::Numeric(values) => {
-                columns.push(
-                    analysed
-                        .iter()
-                        .map(|&row| values[row].unwrap_or(0.0))
-                        .collect(),
-                );
+                columns.push(analysed.iter().map(|&row| values[row].unwrap_or(0.0)));
                 column_names.push(name.clone());
                 column_terms.push(term_index);
             }
@@ -341,15 +351,8 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
             Some(offset)
         }
     };
-    // Column-major storage is the columns end to end. Each column is freed as soon as it is
-    // copied (a large allocation goes straight back to the system), so the design is held about
-    // once, not twice, while it is assembled.
     let n_columns = columns.len();
-    let mut storage = Vec::with_capacity(n * n_columns);
-    for column in columns {
-        storage.extend_from_slice(&column);
-    }
-    let matrix = DMatrix::from_vec(n, n_columns, storage);
+    let matrix = DMatrix::from_vec(n, n_columns, columns.data);
     check_covariates(analysis, &terms, &matrix, &column_names, &fail)?;
     let arm_of_row = analysed.iter().map(|&row| data.arms[row]).collect();
     Ok(Design {
@@ -451,10 +454,42 @@ fn pool(
     (FactorValues { levels, codes }, Some(outcome))
 }
 
+/// The design's columns written end to end into the column-major storage of the finished
+/// matrix, so the design is held once while it is assembled (not as columns and again as the
+/// matrix). The capacity is an upper bound on the columns; pages that are never written are
+/// never touched.
+struct ColumnStore {
+    n_rows: usize,
+    n_columns: usize,
+    data: Vec<f64>,
+}
+
+impl ColumnStore {
+    fn with_capacity(n_rows: usize, columns: usize) -> ColumnStore {
+        ColumnStore {
+            n_rows,
+            n_columns: 0,
+            data: Vec::with_capacity(n_rows * columns),
+        }
+    }
+
+    fn len(&self) -> usize {
+        self.n_columns
+    }
+
+    /// Appends one column of exactly `n_rows` values.
+    fn push(&mut self, values: impl Iterator<Item = f64>) {
+        let before = self.data.len();
+        self.data.extend(values);
+        debug_assert_eq!(self.data.len() - before, self.n_rows);
+        self.n_columns += 1;
+    }
+}
+
 fn push_indicators(
     name: &str,
     values: &FactorValues,
-    columns: &mut Vec<Vec<f64>>,
+    columns: &mut ColumnStore,
     column_names: &mut Vec<String>,
     column_terms: &mut Vec<usize>,
     term_index: usize,
@@ -464,8 +499,7 @@ fn push_indicators(
             values
                 .codes
                 .iter()
-                .map(|&code| f64::from(u8::from(code == level_index)))
-                .collect(),
+                .map(|&code| f64::from(u8::from(code == level_index))),
         );
         column_names.push(format!("{name} = {level}"));
         column_terms.push(term_index);
