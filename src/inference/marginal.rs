@@ -776,37 +776,20 @@ fn variance_function(family: Family, mean: f64) -> Option<f64> {
 /// skipped term would add ±0, so the result is bit for bit the plain triple loop's, at the
 /// cost of the squared non-zeros of a row (one site dummy of many) rather than of p.
 fn weighted_cross_totals(design: &DMatrix<f64>, weights: &[f64]) -> Vec<f64> {
-    const BLOCK: usize = 256;
+    use crate::models::glm::linalg::{BlockNonZeros, ROW_BLOCK};
     let (n_rows, n_columns) = design.shape();
-    let data = design.as_slice();
+    let all: Vec<usize> = (0..n_columns).collect();
     let mut totals = vec![0.0; n_columns * n_columns];
-    let mut counts = vec![0usize; BLOCK];
-    let mut positions = vec![0usize; BLOCK * n_columns];
-    let mut values = vec![0.0_f64; BLOCK * n_columns];
+    let mut non_zeros = BlockNonZeros::new(n_columns);
     let mut block_start = 0;
     while block_start < n_rows {
-        let block_end = (block_start + BLOCK).min(n_rows);
-        counts.iter_mut().for_each(|count| *count = 0);
-        // Column by column, so that each column's slice is read contiguously and each row's
-        // list comes out in ascending column order.
-        for column in 0..n_columns {
-            let slice = &data[column * n_rows + block_start..column * n_rows + block_end];
-            for (offset, &x) in slice.iter().enumerate() {
-                if x != 0.0 {
-                    let slot = offset * n_columns + counts[offset];
-                    positions[slot] = column;
-                    values[slot] = x;
-                    counts[offset] += 1;
-                }
-            }
-        }
-        for offset in 0..block_end - block_start {
-            let w = weights[block_start + offset];
-            let start = offset * n_columns;
-            let row_positions = &positions[start..start + counts[offset]];
-            let row_values = &values[start..start + counts[offset]];
-            for (i, (&a, &x_a)) in row_positions.iter().zip(row_values).enumerate() {
-                for (&b, &x_b) in row_positions[i..].iter().zip(&row_values[i..]) {
+        let block_end = (block_start + ROW_BLOCK).min(n_rows);
+        non_zeros.gather(design.as_slice(), n_rows, &all, block_start..block_end);
+        for row in block_start..block_end {
+            let w = weights[row];
+            let (positions, values) = non_zeros.row(row - block_start);
+            for (i, (&a, &x_a)) in positions.iter().zip(values).enumerate() {
+                for (&b, &x_b) in positions[i..].iter().zip(&values[i..]) {
                     totals[a * n_columns + b] += w * x_a * x_b;
                 }
             }

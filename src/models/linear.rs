@@ -394,51 +394,11 @@ fn fit(
     // κ(R)²·ε. When κ₁(R) = ‖R‖₁‖R⁻¹‖₁ exceeds `REFINE_COVARIANCE_ABOVE`
     // that bound is no longer far below the digits a report shows, and each
     // column is refined instead: b = 0, c = −e_t.
-    let inverse_triangular = if with_covariance {
-        upper_triangular_inverse(&factorization.triangular)
+    let scaled_inverse = if with_covariance {
+        scaled_covariance(&factorization, &kept_columns, n_observations, options)
     } else {
-        vec![vec![0.0; rank]; rank]
+        DMatrix::<f64>::zeros(rank, rank)
     };
-    let condition = one_norm_upper(&factorization.triangular) * one_norm_upper(&inverse_triangular);
-    let mut scaled_inverse = DMatrix::<f64>::zeros(rank, rank);
-    if !with_covariance {
-        // Only the residuals are wanted; a unit diagonal keeps the checks below quiet.
-        for position in 0..rank {
-            scaled_inverse[(position, position)] = 1.0;
-        }
-    } else if condition.is_finite()
-        && condition <= REFINE_COVARIANCE_ABOVE
-        && !options.always_refine_covariance
-    {
-        for first in 0..rank {
-            for second in first..rank {
-                // Row `first` of R⁻¹ times row `second`; both are zero left of
-                // their own index.
-                let mut sum = 0.0;
-                for k in second..rank {
-                    sum += inverse_triangular[first][k] * inverse_triangular[second][k];
-                }
-                scaled_inverse[(first, second)] = sum;
-                scaled_inverse[(second, first)] = sum;
-            }
-        }
-    } else {
-        let zero_response = vec![0.0; n_observations];
-        for target in 0..rank {
-            let mut unit = vec![0.0; rank];
-            unit[target] = -1.0;
-            let column_solution = refined_augmented_solve(
-                &factorization,
-                &kept_columns,
-                &zero_response,
-                &unit,
-                options.max_refinement_steps,
-            );
-            for position in 0..rank {
-                scaled_inverse[(position, target)] = column_solution.x[position];
-            }
-        }
-    }
     let mut unscaled_covariance = DMatrix::<f64>::zeros(n_columns, n_columns);
     for (first, &column_a) in factorization.kept.iter().enumerate() {
         for (second, &column_b) in factorization.kept.iter().enumerate() {
@@ -489,7 +449,7 @@ fn fit(
         .kept
         .iter()
         .all(|&column| unscaled_covariance[(column, column)] > 0.0);
-    if !covariance_diagonal_valid {
+    if with_covariance && !covariance_diagonal_valid {
         return Err(LeastSquaresError::NumericalFailure {
             detail: "a diagonal element of the inverse cross-product matrix is not positive",
         });
@@ -509,6 +469,53 @@ fn fit(
         refinement_steps: solution.refinement_steps,
         refinement_converged: solution.converged,
     })
+}
+
+/// `(AᵀA)⁻¹` of the equilibrated accepted columns, in pivot order (see [`fit`]).
+fn scaled_covariance(
+    factorization: &PivotedQr,
+    kept_columns: &KeptColumns,
+    n_observations: usize,
+    options: &LeastSquaresOptions,
+) -> DMatrix<f64> {
+    let rank = factorization.kept.len();
+    let inverse_triangular = upper_triangular_inverse(&factorization.triangular);
+    let condition = one_norm_upper(&factorization.triangular) * one_norm_upper(&inverse_triangular);
+    let mut scaled_inverse = DMatrix::<f64>::zeros(rank, rank);
+    if condition.is_finite()
+        && condition <= REFINE_COVARIANCE_ABOVE
+        && !options.always_refine_covariance
+    {
+        for first in 0..rank {
+            for second in first..rank {
+                // Row `first` of R⁻¹ times row `second`; both are zero left of
+                // their own index.
+                let mut sum = 0.0;
+                for k in second..rank {
+                    sum += inverse_triangular[first][k] * inverse_triangular[second][k];
+                }
+                scaled_inverse[(first, second)] = sum;
+                scaled_inverse[(second, first)] = sum;
+            }
+        }
+    } else {
+        let zero_response = vec![0.0; n_observations];
+        for target in 0..rank {
+            let mut unit = vec![0.0; rank];
+            unit[target] = -1.0;
+            let column_solution = refined_augmented_solve(
+                &factorization,
+                &kept_columns,
+                &zero_response,
+                &unit,
+                options.max_refinement_steps,
+            );
+            for position in 0..rank {
+                scaled_inverse[(position, target)] = column_solution.x[position];
+            }
+        }
+    }
+    scaled_inverse
 }
 
 fn check_options(options: &LeastSquaresOptions) -> Result<(), LeastSquaresError> {

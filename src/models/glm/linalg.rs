@@ -14,7 +14,7 @@ use nalgebra::{DMatrix, DVector};
 
 /// Rows per block in the cross-product pass: long enough for contiguous inner loops over a
 /// column, short enough that the block of every active column stays in cache.
-const ROW_BLOCK: usize = 256;
+pub(crate) const ROW_BLOCK: usize = 256;
 
 /// Σᵢ wᵢ xᵢ xᵢᵀ over the `active` columns of `design`, and, when `right_hand_side` is given,
 /// Σᵢ wᵢ xᵢ zᵢ. One pass over the rows in blocks; each block reads contiguous column slices.
@@ -106,6 +106,81 @@ fn dense_weighted_cross_product(
         }
     }
     (cross, vector)
+}
+
+/// The non-zero entries of each row of one block of rows (at most [`ROW_BLOCK`]), each row's
+/// list in the order of the columns it was gathered from. Workspace O(block × columns), reused
+/// from block to block.
+pub(crate) struct BlockNonZeros {
+    width: usize,
+    counts: Vec<usize>,
+    positions: Vec<usize>,
+    values: Vec<f64>,
+}
+
+impl BlockNonZeros {
+    /// Workspace for rows of at most `width` columns.
+    pub(crate) fn new(width: usize) -> BlockNonZeros {
+        BlockNonZeros {
+            width,
+            counts: vec![0; ROW_BLOCK],
+            positions: vec![0; ROW_BLOCK * width],
+            values: vec![0.0; ROW_BLOCK * width],
+        }
+    }
+
+    /// Gathers rows `block` of the column-major `data` (`n_rows` rows) over `columns`, column by
+    /// column so that each column's slice is read contiguously; positions index `columns`.
+    pub(crate) fn gather(
+        &mut self,
+        data: &[f64],
+        n_rows: usize,
+        columns: &[usize],
+        block: std::ops::Range<usize>,
+    ) {
+        self.counts.iter_mut().for_each(|count| *count = 0);
+        for (position, &column) in columns.iter().enumerate() {
+            let slice = &data[column * n_rows + block.start..column * n_rows + block.end];
+            for (offset, &x) in slice.iter().enumerate() {
+                if x != 0.0 {
+                    self.push(offset, position, x);
+                }
+            }
+        }
+    }
+
+    /// Gathers rows `block` from stored sparse rows; `position_of` maps a design column to
+    /// its position (`usize::MAX` for a column left out).
+    fn gather_stored(
+        &mut self,
+        rows: &SparseRows,
+        position_of: &[usize],
+        block: std::ops::Range<usize>,
+    ) {
+        self.counts.iter_mut().for_each(|count| *count = 0);
+        for (offset, row) in block.enumerate() {
+            for entry in rows.row_starts[row]..rows.row_starts[row + 1] {
+                let position = position_of[rows.columns[entry] as usize];
+                if position != usize::MAX {
+                    self.push(offset, position, rows.values[entry]);
+                }
+            }
+        }
+    }
+
+    fn push(&mut self, offset: usize, position: usize, value: f64) {
+        let slot = offset * self.width + self.counts[offset];
+        self.positions[slot] = position;
+        self.values[slot] = value;
+        self.counts[offset] += 1;
+    }
+
+    /// The positions and values of row `offset` of the block.
+    pub(crate) fn row(&self, offset: usize) -> (&[usize], &[f64]) {
+        let start = offset * self.width;
+        let end = start + self.counts[offset];
+        (&self.positions[start..end], &self.values[start..end])
+    }
 }
 
 /// The non-zero entries of a design, row by row (compressed sparse rows), built once per
@@ -228,80 +303,34 @@ fn sparse_weighted_cross_product(
     // Block partial sums, row-major upper triangle (a ≤ b).
     let mut partial = vec![0.0_f64; n_active * n_active];
     let mut partial_vector = vec![0.0_f64; n_active];
-    let mut touched = vec![false; n_active * n_active];
-    let mut touched_list: Vec<usize> = Vec::with_capacity(n_active * n_active);
-    // The non-zeros of each row of a block, gathered column by column (contiguous reads of
-    // each column's block slice) so that each row's list is in ascending column order.
-    let mut row_counts = vec![0usize; ROW_BLOCK];
-    let mut row_positions = vec![0usize; ROW_BLOCK * n_active];
-    let mut row_values = vec![0.0_f64; ROW_BLOCK * n_active];
+    let mut non_zeros = BlockNonZeros::new(n_active);
     let mut block_start = 0;
     while block_start < n_rows {
         let block_end = (block_start + ROW_BLOCK).min(n_rows);
-        let block_length = block_end - block_start;
-        row_counts[..block_length]
-            .iter_mut()
-            .for_each(|count| *count = 0);
-        if let Some(rows) = rows {
-            for offset in 0..block_length {
-                let row = block_start + offset;
-                for entry in rows.row_starts[row]..rows.row_starts[row + 1] {
-                    let a = position_of[rows.columns[entry] as usize];
-                    if a != usize::MAX {
-                        let slot = offset * n_active + row_counts[offset];
-                        row_positions[slot] = a;
-                        row_values[slot] = rows.values[entry];
-                        row_counts[offset] += 1;
-                    }
-                }
-            }
+        match rows {
+            Some(rows) => non_zeros.gather_stored(rows, &position_of, block_start..block_end),
+            None => non_zeros.gather(data, n_rows, active, block_start..block_end),
         }
-        for (a, &column) in active.iter().enumerate().filter(|_| rows.is_none()) {
-            let values = &data[column * n_rows + block_start..column * n_rows + block_end];
-            for (offset, &x) in values.iter().enumerate() {
-                if x != 0.0 {
-                    let slot = offset * n_active + row_counts[offset];
-                    row_positions[slot] = a;
-                    row_values[slot] = x;
-                    row_counts[offset] += 1;
-                }
-            }
-        }
-        for offset in 0..block_length {
-            let row = block_start + offset;
-            let count = row_counts[offset];
-            let positions = &row_positions[offset * n_active..offset * n_active + count];
-            let values = &row_values[offset * n_active..offset * n_active + count];
+        for row in block_start..block_end {
+            let (positions, values) = non_zeros.row(row - block_start);
             let w = weights[row];
             for (i, (&a, &x_a)) in positions.iter().zip(values).enumerate() {
                 for (&b, &x_b) in positions[i..].iter().zip(&values[i..]) {
-                    let index = a * n_active + b;
-                    if !touched[index] {
-                        touched[index] = true;
-                        touched_list.push(index);
-                    }
-                    partial[index] += x_a * x_b * w;
+                    partial[a * n_active + b] += x_a * x_b * w;
                 }
                 if let Some(rhs) = right_hand_side {
                     partial_vector[a] += x_a * rhs[row] * w;
                 }
             }
         }
-        // The dense pass adds every block sum, zeros included; adding +0 changes nothing,
-        // so only the entries this block touched are added (in any order: each total gets
-        // one addition per block).
-        for &index in &touched_list {
-            let (a, b) = (index / n_active, index % n_active);
-            cross[(a, b)] += partial[index];
-            partial[index] = 0.0;
-            touched[index] = false;
-        }
-        touched_list.clear();
-        if right_hand_side.is_some() {
-            for a in 0..n_active {
-                vector[a] += partial_vector[a];
-                partial_vector[a] = 0.0;
+        // Each block's sums are added to the totals, as in the dense pass.
+        for a in 0..n_active {
+            for b in a..n_active {
+                cross[(a, b)] += partial[a * n_active + b];
+                partial[a * n_active + b] = 0.0;
             }
+            vector[a] += partial_vector[a];
+            partial_vector[a] = 0.0;
         }
         block_start = block_end;
     }

@@ -31,7 +31,7 @@
 mod family;
 mod firth;
 mod irls;
-mod linalg;
+pub(crate) mod linalg;
 mod negative_binomial;
 mod profile;
 
