@@ -3,7 +3,7 @@
 use super::Table;
 use crate::error::{Error, ErrorKind, Location, Problem};
 use crate::plan::{Plan, UnmatchedRule, VariableKind};
-use std::collections::BTreeMap;
+use std::collections::{HashMap, HashSet};
 
 /// How many value problems are listed before the rest are summarised; a file
 /// with a wrong delimiter would otherwise produce one message per cell.
@@ -145,8 +145,10 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
         suppressed: 0,
     };
 
-    // Arms of every allocation row, checked against the plan's levels.
-    let mut arm_of_key: BTreeMap<&str, usize> = BTreeMap::new();
+    // Arms of every allocation row, checked against the plan's levels. The hash
+    // maps and sets here are only looked up, never iterated, so their order
+    // cannot reach any output.
+    let mut arm_of_key: HashMap<&str, usize> = HashMap::with_capacity(allocation.n_rows());
     for row in 0..allocation.n_rows() {
         let code = allocation.cell(row, arm_column).trim();
         match treatment.arms.iter().position(|arm| arm.code == code) {
@@ -175,10 +177,10 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
         .filter(|(id, _)| !arm_of_key.contains_key(id))
         .map(|(id, _)| id.to_string())
         .collect();
-    let subject_set: BTreeMap<&str, ()> = subject_rows.iter().map(|&(id, _)| (id, ())).collect();
+    let subject_set: HashSet<&str> = subject_rows.iter().map(|&(id, _)| id).collect();
     let only_in_allocation: Vec<String> = allocation_rows
         .iter()
-        .filter(|(id, _)| !subject_set.contains_key(id))
+        .filter(|(id, _)| !subject_set.contains(id))
         .map(|(id, _)| id.to_string())
         .collect();
     // A subject whose arm was rejected above would also count as unmatched;
@@ -314,7 +316,8 @@ fn unique_keys<'a>(
     column: usize,
     collector: &mut Collector,
 ) -> Vec<(&'a str, usize)> {
-    let mut first_line: BTreeMap<&str, usize> = BTreeMap::new();
+    // Looked up, never iterated: its order cannot reach any output.
+    let mut first_line: HashMap<&str, usize> = HashMap::with_capacity(table.n_rows());
     let mut keys = Vec::with_capacity(table.n_rows());
     for row in 0..table.n_rows() {
         let key = table.cell(row, column).trim();

@@ -7,8 +7,8 @@
 use super::distributions::normal_quantile;
 use super::{
     AnalysisInference, CheckOutcome, CoefficientRow, ContrastResult, Finding, FitStatistics,
-    bilinear, contrast_vector, describe_stop, drop_columns, exponentiate, likelihood_ratio,
-    wald_chi_square, wald_estimate,
+    bilinear, contrast_vector, describe_stop, exponentiate, likelihood_ratio, wald_chi_square,
+    wald_estimate,
 };
 use crate::design::Design;
 use crate::models::StopReason;
@@ -348,8 +348,11 @@ fn likelihood_ratio_test(
     fit: &GlmFit,
     treatment_columns: &[usize],
 ) -> Result<super::JointTest, String> {
-    let reduced_design = drop_columns(&design.matrix, treatment_columns);
-    let mut reduced_data = GlmData::new(&reduced_design, data.response);
+    // The reduced model reads the same design without its treatment columns (no copy).
+    let kept: Vec<usize> = (0..design.matrix.ncols())
+        .filter(|column| !treatment_columns.contains(column))
+        .collect();
+    let mut reduced_data = GlmData::new(&design.matrix, data.response).with_columns(&kept);
     if let Some(offset) = data.offset {
         reduced_data = reduced_data.with_offset(offset);
     }

@@ -332,14 +332,6 @@ pub(crate) fn likelihood_ratio(full: f64, reduced: f64, df: usize) -> Result<Joi
     })
 }
 
-/// The design without the given columns (used for reduced models).
-pub(crate) fn drop_columns(matrix: &DMatrix<f64>, drop: &[usize]) -> DMatrix<f64> {
-    let kept: Vec<usize> = (0..matrix.ncols())
-        .filter(|column| !drop.contains(column))
-        .collect();
-    matrix.select_columns(&kept)
-}
-
 /// A stop reason in words, for reports.
 pub(crate) fn describe_stop(reason: &crate::models::StopReason, column_names: &[String]) -> String {
     use crate::models::StopReason;

@@ -9,8 +9,11 @@ use super::{
     describe_stop, likelihood_ratio, wald_chi_square, wald_estimate,
 };
 use crate::design::Design;
+use crate::models::DesignColumns;
 use crate::models::StopReason;
-use crate::models::multinomial::{MultinomialOptions, fit_multinomial_logit};
+use crate::models::multinomial::{
+    MultinomialOptions, fit_multinomial_logit, fit_multinomial_logit_on,
+};
 use crate::plan::Analysis;
 
 pub fn analyse(
@@ -87,9 +90,15 @@ pub fn analyse(
         Ok(test) => treatment_tests.push(test),
         Err(reason) => failures.push(reason),
     }
-    let reduced_design = super::drop_columns(&design.matrix, &treatment);
-    match fit_multinomial_logit(
-        &reduced_design,
+    // The reduced model reads the design without its treatment columns in place (no copy).
+    let kept: Vec<usize> = (0..p)
+        .filter(|column| !treatment.contains(column))
+        .collect();
+    let reduced_view = DesignColumns::new(&design.matrix, &kept).ok_or_else(|| {
+        "internal error: a model column is not a column of the design".to_string()
+    })?;
+    match fit_multinomial_logit_on(
+        reduced_view,
         &response,
         levels.len(),
         reference_category,

@@ -15,24 +15,39 @@ use super::{
     wald_estimate,
 };
 use crate::design::{Design, TermKind};
-use crate::models::StopReason;
 use crate::models::ordinal::{
     CumulativeLink, CumulativeLinkFit, CumulativeLinkOptions, brant_test, fit_cumulative_link,
-    fit_nominal_effects,
+    fit_cumulative_link_on, fit_nominal_effects_on,
 };
+use crate::models::{DesignColumns, StopReason};
 use crate::plan::{Analysis, Check, Fallback, Supportive};
 use nalgebra::DMatrix;
 
 /// The model's data after the plan's category handling: the design without its
-/// intercept (cut-points take its place), the response as category indices.
-struct Prepared {
-    matrix: DMatrix<f64>,
+/// intercept (cut-points take its place; read in place, not copied), the response as
+/// category indices.
+struct Prepared<'a> {
+    /// The analysis design, intercept first; the model uses its other columns.
+    design: &'a DMatrix<f64>,
     /// Design column names without the intercept.
     names: Vec<String>,
-    /// Position in `matrix` of each arm's indicator.
+    /// Position among the model's columns (the design's without the intercept) of each arm's
+    /// indicator.
     treatment_columns: Vec<Option<usize>>,
     response: Vec<usize>,
     levels: Vec<String>,
+}
+
+impl Prepared<'_> {
+    /// Number of the model's columns: the design's without the intercept.
+    fn n_columns(&self) -> usize {
+        self.design.ncols() - 1
+    }
+
+    /// The design columns of the model's columns `kept` (positions among the model's columns).
+    fn design_columns(kept: &[usize]) -> Vec<usize> {
+        kept.iter().map(|column| column + 1).collect()
+    }
 }
 
 fn link_words(link: CumulativeLink) -> &'static str {
@@ -45,12 +60,12 @@ fn link_words(link: CumulativeLink) -> &'static str {
 
 /// Merge empty categories with a neighbour (the next higher, or the next lower
 /// for the top category) when the plan allows it.
-fn prepare(
-    design: &Design,
+fn prepare<'a>(
+    design: &'a Design,
     analysis: &Analysis,
     findings: &mut Vec<Finding>,
     fallback_used: &mut Option<String>,
-) -> Result<Prepared, String> {
+) -> Result<Prepared<'a>, String> {
     let mut levels = design.response_levels.clone();
     let mut response: Vec<usize> = design
         .response
@@ -108,8 +123,6 @@ fn prepare(
             }
         }
     }
-    let columns: Vec<usize> = (1..design.matrix.ncols()).collect();
-    let matrix = design.matrix.select_columns(&columns);
     let names = design.column_names[1..].to_vec();
     let treatment_columns = design
         .treatment_columns
@@ -117,12 +130,18 @@ fn prepare(
         .map(|column| column.map(|column| column - 1))
         .collect();
     Ok(Prepared {
-        matrix,
+        design: &design.matrix,
         names,
         treatment_columns,
         response,
         levels,
     })
+}
+
+/// The view of `columns` of `matrix`; they are the design's own, so a refusal is a defect.
+fn view<'a>(matrix: &'a DMatrix<f64>, columns: &'a [usize]) -> Result<DesignColumns<'a>, String> {
+    DesignColumns::new(matrix, columns)
+        .ok_or_else(|| "internal error: a model column is not a column of the design".to_string())
 }
 
 /// Fit, dropping aliased covariate columns (reported) and refusing an aliased treatment.
@@ -132,12 +151,12 @@ fn fit(
 ) -> Result<(CumulativeLinkFit, Vec<usize>), String> {
     let mut dropped: Vec<usize> = Vec::new();
     loop {
-        let kept: Vec<usize> = (0..prepared.matrix.ncols())
+        let kept: Vec<usize> = (0..prepared.n_columns())
             .filter(|column| !dropped.contains(column))
             .collect();
-        let matrix = prepared.matrix.select_columns(&kept);
-        let fit = fit_cumulative_link(
-            &matrix,
+        let columns = Prepared::design_columns(&kept);
+        let fit = fit_cumulative_link_on(
+            view(prepared.design, &columns)?,
             &prepared.response,
             prepared.levels.len(),
             None,
@@ -200,7 +219,7 @@ pub fn analyse(
     };
     let (model, dropped) = fit(&prepared, &options)?;
     let n_cuts = prepared.levels.len() - 1;
-    let n_columns = prepared.matrix.ncols();
+    let n_columns = prepared.n_columns();
     let (beta_or_none, kept) = expand(&model, n_columns, &dropped);
     let covariance_kept = model.covariance.clone().ok_or_else(|| {
         "the information matrix is not positive definite at the estimate".to_string()
@@ -280,8 +299,9 @@ pub fn analyse(
         .copied()
         .filter(|column| !treatment.contains(column))
         .collect();
-    let reduced = fit_cumulative_link(
-        &prepared.matrix.select_columns(&without_treatment),
+    let reduced_columns = Prepared::design_columns(&without_treatment);
+    let reduced = fit_cumulative_link_on(
+        view(prepared.design, &reduced_columns)?,
         &prepared.response,
         prepared.levels.len(),
         None,
@@ -501,7 +521,19 @@ fn proportional_odds_checks(
             details: Vec::new(),
         }];
     }
-    let matrix = prepared.matrix.select_columns(kept);
+    let columns = Prepared::design_columns(kept);
+    let model_view = match view(prepared.design, &columns) {
+        Ok(model_view) => model_view,
+        Err(reason) => {
+            return vec![CheckOutcome {
+                name: "Proportional odds".to_string(),
+                rows: Vec::new(),
+                failed: true,
+                verdict: reason,
+                details: Vec::new(),
+            }];
+        }
+    };
     let terms = terms_within(design, kept);
     let full_log_likelihood = model.log_likelihood.unwrap_or(f64::NAN);
 
@@ -511,8 +543,8 @@ fn proportional_odds_checks(
     let mut every_column: Vec<usize> = Vec::new();
     for (name, _, columns) in &terms {
         every_column.extend(columns);
-        match fit_nominal_effects(
-            &matrix,
+        match fit_nominal_effects_on(
+            model_view,
             &prepared.response,
             n_categories,
             None,
@@ -576,6 +608,8 @@ fn proportional_odds_checks(
         .iter()
         .map(|(_, _, columns)| columns.clone())
         .collect();
+    // Brant's separate binary fits read the design through a copy of the model's columns.
+    let matrix = prepared.design.select_columns(&columns);
     let outcome = match brant_test(
         &matrix,
         &prepared.response,
@@ -834,7 +868,8 @@ fn partial_proportional_odds(
     if n_categories < 3 {
         return None;
     }
-    let matrix = prepared.matrix.select_columns(kept);
+    let columns = Prepared::design_columns(kept);
+    let model_view = view(prepared.design, &columns).ok()?;
     // Positions (within the kept columns) of the arms' indicators.
     let arm_position: Vec<Option<usize>> = prepared
         .treatment_columns
@@ -844,8 +879,8 @@ fn partial_proportional_odds(
         })
         .collect();
     let nominal: Vec<usize> = arm_position.iter().flatten().copied().collect();
-    let fit = fit_nominal_effects(
-        &matrix,
+    let fit = fit_nominal_effects_on(
+        model_view,
         &prepared.response,
         n_categories,
         None,

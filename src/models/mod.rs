@@ -8,6 +8,66 @@ pub mod multinomial;
 pub mod ordinal;
 pub mod portable;
 
+use nalgebra::DMatrix;
+
+/// Some columns of a column-major design, read in place: column `c` of the view is column
+/// `columns[c]` of the matrix. A model fitted to a view is, to the bit, the model fitted to a
+/// copy of those columns; the view only saves the copy (an n × p design at 10⁶ rows is
+/// hundreds of megabytes).
+#[derive(Debug, Clone, Copy)]
+pub struct DesignColumns<'a> {
+    matrix: &'a DMatrix<f64>,
+    columns: &'a [usize],
+}
+
+impl<'a> DesignColumns<'a> {
+    /// The view of `columns` of `matrix`, or `None` when a column is out of range or listed twice.
+    pub fn new(matrix: &'a DMatrix<f64>, columns: &'a [usize]) -> Option<DesignColumns<'a>> {
+        let mut seen = vec![false; matrix.ncols()];
+        for &column in columns {
+            if column >= matrix.ncols() || seen[column] {
+                return None;
+            }
+            seen[column] = true;
+        }
+        Some(DesignColumns { matrix, columns })
+    }
+
+    pub fn nrows(&self) -> usize {
+        self.matrix.nrows()
+    }
+
+    pub fn ncols(&self) -> usize {
+        self.columns.len()
+    }
+
+    /// The matrix the view reads and, per view column, its column there.
+    pub fn matrix(&self) -> &'a DMatrix<f64> {
+        self.matrix
+    }
+
+    pub fn matrix_columns(&self) -> &'a [usize] {
+        self.columns
+    }
+
+    /// Column `column` of the view, contiguous.
+    pub fn column(&self, column: usize) -> &'a [f64] {
+        let n_rows = self.matrix.nrows();
+        let start = self.columns[column] * n_rows;
+        &self.matrix.as_slice()[start..start + n_rows]
+    }
+
+    /// The entry at `row` of view column `column`.
+    pub fn get(&self, row: usize, column: usize) -> f64 {
+        self.matrix[(row, self.columns[column])]
+    }
+}
+
+/// `0, 1, …, n − 1`: the column list of a view of every column.
+pub(crate) fn every_column(n: usize) -> Vec<usize> {
+    (0..n).collect()
+}
+
 /// Why an iterative (or direct) fit stopped. Carried into results and the
 /// report; a fit never panics and never reports NaN in place of a reason.
 #[derive(Debug, Clone, PartialEq)]

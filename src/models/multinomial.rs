@@ -26,8 +26,8 @@
 use crate::models::portable::Portable;
 use nalgebra::{DMatrix, DVector};
 
-use super::StopReason;
 use super::ordinal::{ModelInputError, prepare_common, sweep_for_aliasing};
+use super::{DesignColumns, StopReason, every_column};
 
 /// Options for the Newton–Raphson fit. Built with [`Default`] and adjusted field by field.
 #[derive(Debug, Clone, PartialEq)]
@@ -92,6 +92,28 @@ pub fn fit_multinomial_logit(
     weights: Option<&[f64]>,
     options: &MultinomialOptions,
 ) -> Result<MultinomialFit, ModelInputError> {
+    let all = every_column(design.ncols());
+    let view = DesignColumns::new(design, &all).expect("every column is in range");
+    fit_multinomial_logit_on(
+        view,
+        response,
+        n_categories,
+        reference_category,
+        weights,
+        options,
+    )
+}
+
+/// [`fit_multinomial_logit`] on some columns of a design, read in place (no copy); the fit's
+/// coefficient columns and column indices count positions in the view.
+pub fn fit_multinomial_logit_on(
+    design: DesignColumns<'_>,
+    response: &[usize],
+    n_categories: usize,
+    reference_category: usize,
+    weights: Option<&[f64]>,
+    options: &MultinomialOptions,
+) -> Result<MultinomialFit, ModelInputError> {
     if options.max_iterations == 0 {
         return Err(ModelInputError::InvalidOptions {
             detail: "max_iterations must be at least 1".to_string(),
@@ -137,18 +159,14 @@ pub fn fit_multinomial_logit(
         return Ok(not_estimated(StopReason::EmptyCategory { category }));
     }
     // Aliasing on the uncentred weighted cross-product: the design carries its own intercept.
-    let mut cross = DMatrix::<f64>::zeros(n_columns, n_columns);
-    for row in 0..n_rows {
-        let w = prepared.weights[row];
-        if w == 0.0 {
-            continue;
-        }
-        for r in 0..n_columns {
-            for s in r..n_columns {
-                cross[(r, s)] += w * design[(row, r)] * design[(row, s)];
-            }
-        }
-    }
+    // One blocked pass over the rows, visiting only each row's non-zeros when the design is
+    // mostly indicators.
+    let (cross, _) = crate::models::glm::linalg::weighted_cross_product(
+        design.matrix(),
+        design.matrix_columns(),
+        &prepared.weights,
+        None,
+    );
     let aliased = sweep_for_aliasing(cross);
     if !aliased.is_empty() {
         return Ok(not_estimated(StopReason::SingularDesign {
@@ -157,9 +175,8 @@ pub fn fit_multinomial_logit(
     }
 
     let n_parameters = n_free * n_columns;
-    let x = design.as_slice();
     let problem = Problem {
-        x,
+        design,
         n_rows,
         n_columns,
         response,
@@ -183,7 +200,7 @@ pub fn fit_multinomial_logit(
     {
         let value = (0..n_rows)
             .find(|&r| prepared.weights[r] > 0.0)
-            .map(|r| design[(r, intercept)])
+            .map(|r| design.get(r, intercept))
             .unwrap_or(1.0);
         for (position, &category) in non_reference_categories.iter().enumerate() {
             parameters[position * n_columns + intercept] = (prepared.category_weight[category]
@@ -346,8 +363,7 @@ pub fn multinomial_probabilities(
 }
 
 struct Problem<'a> {
-    /// Column-major design values.
-    x: &'a [f64],
+    design: DesignColumns<'a>,
     n_rows: usize,
     n_columns: usize,
     response: &'a [usize],
@@ -396,7 +412,7 @@ impl Problem<'_> {
             // bit for bit, and a row of treatment and site dummies has few non-zeros.
             workspace.non_zero.clear();
             for c in 0..p {
-                let value = self.x[c * self.n_rows + row];
+                let value = self.design.get(row, c);
                 workspace.x_row[c] = value;
                 if value != 0.0 {
                     workspace.non_zero.push(c);
@@ -490,8 +506,9 @@ mod tests {
         let response = [0, 1, 2, 3, 1, 2, 0, 3, 2, 1];
         let weights = [1.0, 2.0, 1.0, 0.5, 1.0, 3.0, 1.0, 1.0, 0.0, 2.0];
         let non_reference = [0, 1, 3];
+        let all = every_column(3);
         let problem = Problem {
-            x: design.as_slice(),
+            design: DesignColumns::new(&design, &all).expect("in range"),
             n_rows: 10,
             n_columns: 3,
             response: &response,

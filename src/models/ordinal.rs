@@ -34,7 +34,7 @@ use std::fmt;
 use nalgebra::{DMatrix, DVector};
 use statrs::distribution::{ContinuousCDF, Normal};
 
-use super::StopReason;
+use super::{DesignColumns, StopReason, every_column};
 
 /// The link function `g` of a cumulative link model.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -339,6 +339,20 @@ pub fn fit_cumulative_link(
     weights: Option<&[f64]>,
     options: &CumulativeLinkOptions,
 ) -> Result<CumulativeLinkFit, ModelInputError> {
+    let all = every_column(design.ncols());
+    let view = DesignColumns::new(design, &all).expect("every column is in range");
+    fit_cumulative_link_on(view, response, n_categories, weights, options)
+}
+
+/// [`fit_cumulative_link`] on some columns of a design, read in place (no copy); the fit's
+/// coefficients and column indices count positions in the view.
+pub fn fit_cumulative_link_on(
+    design: DesignColumns<'_>,
+    response: &[usize],
+    n_categories: usize,
+    weights: Option<&[f64]>,
+    options: &CumulativeLinkOptions,
+) -> Result<CumulativeLinkFit, ModelInputError> {
     let outcome = fit_engine(design, response, n_categories, weights, &[], options)?;
     let n_cut_points = n_categories - 1;
     let (cut_points, coefficients) = match &outcome.parameters {
@@ -374,6 +388,28 @@ pub fn fit_cumulative_link(
 /// probabilities can still cross for some rows; see [`NominalEffectsFit::n_rows_with_crossing`].
 pub fn fit_nominal_effects(
     design: &DMatrix<f64>,
+    response: &[usize],
+    n_categories: usize,
+    weights: Option<&[f64]>,
+    nominal_columns: &[usize],
+    options: &CumulativeLinkOptions,
+) -> Result<NominalEffectsFit, ModelInputError> {
+    let all = every_column(design.ncols());
+    let view = DesignColumns::new(design, &all).expect("every column is in range");
+    fit_nominal_effects_on(
+        view,
+        response,
+        n_categories,
+        weights,
+        nominal_columns,
+        options,
+    )
+}
+
+/// [`fit_nominal_effects`] on some columns of a design, read in place (no copy);
+/// `nominal_columns` and the fit's column indices count positions in the view.
+pub fn fit_nominal_effects_on(
+    design: DesignColumns<'_>,
     response: &[usize],
     n_categories: usize,
     weights: Option<&[f64]>,
@@ -519,7 +555,9 @@ pub fn brant_test(
             minimum: 3,
         });
     }
-    let prepared = prepare(design, response, n_categories, weights)?;
+    let all = every_column(n_columns);
+    let view = DesignColumns::new(design, &all).expect("every column is in range");
+    let prepared = prepare(view, response, n_categories, weights)?;
     for term in terms {
         for (position, &column) in term.iter().enumerate() {
             if column >= n_columns || term[..position].contains(&column) {
@@ -737,11 +775,14 @@ pub(crate) struct PreparedInput {
 }
 
 pub(crate) fn check_finite_design(design: &DMatrix<f64>) -> Result<(), ModelInputError> {
+    let all = every_column(design.ncols());
+    check_finite_columns(DesignColumns::new(design, &all).expect("every column is in range"))
+}
+
+pub(crate) fn check_finite_columns(design: DesignColumns<'_>) -> Result<(), ModelInputError> {
     for column in 0..design.ncols() {
-        for row in 0..design.nrows() {
-            if !design[(row, column)].is_finite() {
-                return Err(ModelInputError::NonFiniteDesign { row, column });
-            }
+        if let Some(row) = design.column(column).iter().position(|x| !x.is_finite()) {
+            return Err(ModelInputError::NonFiniteDesign { row, column });
         }
     }
     Ok(())
@@ -751,7 +792,7 @@ pub(crate) fn check_finite_design(design: &DMatrix<f64>) -> Result<(), ModelInpu
 /// columns. Constant columns are an error here (no intercept allowed); the multinomial engine
 /// calls [`prepare_with_intercept`] instead.
 fn prepare(
-    design: &DMatrix<f64>,
+    design: DesignColumns<'_>,
     response: &[usize],
     n_categories: usize,
     weights: Option<&[f64]>,
@@ -771,7 +812,7 @@ fn prepare(
 }
 
 pub(crate) fn prepare_common(
-    design: &DMatrix<f64>,
+    design: DesignColumns<'_>,
     response: &[usize],
     n_categories: usize,
     weights: Option<&[f64]>,
@@ -793,7 +834,7 @@ pub(crate) fn prepare_common(
             found: response.len(),
         });
     }
-    check_finite_design(design)?;
+    check_finite_columns(design)?;
     let weights: Vec<f64> = match weights {
         Some(given) => {
             if given.len() != n_rows {
@@ -836,9 +877,10 @@ pub(crate) fn prepare_common(
         let mut minimum = f64::INFINITY;
         let mut maximum = f64::NEG_INFINITY;
         let mut sum_squares = 0.0;
+        let values = design.column(column);
         for row in 0..n_rows {
             if weights[row] > 0.0 {
-                let value = design[(row, column)];
+                let value = values[row];
                 minimum = minimum.min(value);
                 maximum = maximum.max(value);
                 sum_squares += weights[row] * value * value;
@@ -863,34 +905,72 @@ pub(crate) fn prepare_common(
 /// Cholesky-like sweep of the weighted, centred cross-product matrix in column order, flagging a
 /// column whose residual sum of squares falls below 1e-9 of its centred sum of squares.
 pub(crate) fn aliased_columns_with_implicit_intercept(
-    design: &DMatrix<f64>,
+    design: DesignColumns<'_>,
     weights: &[f64],
     total_weight: f64,
 ) -> Vec<usize> {
     let n_columns = design.ncols();
     let n_rows = design.nrows();
+    let column = |c: usize| design.column(c);
     let means: Vec<f64> = (0..n_columns)
         .map(|c| {
-            (0..n_rows)
-                .map(|r| weights[r] * design[(r, c)])
+            column(c)
+                .iter()
+                .zip(weights)
+                .map(|(x, w)| w * x)
                 .sum::<f64>()
                 / total_weight
         })
         .collect();
+    // Blocks of rows, centred column by column into contiguous buffers (one of them
+    // weighted), so that every product below reads two contiguous slices.
+    let block_rows = crate::models::glm::linalg::ROW_BLOCK;
+    let mut centred = vec![0.0; block_rows * n_columns];
+    let mut weighted = vec![0.0; block_rows * n_columns];
     let mut cross = DMatrix::<f64>::zeros(n_columns, n_columns);
-    for row in 0..n_rows {
-        let w = weights[row];
-        if w == 0.0 {
-            continue;
-        }
-        for r in 0..n_columns {
-            let centred_r = design[(row, r)] - means[r];
-            for s in r..n_columns {
-                cross[(r, s)] += w * centred_r * (design[(row, s)] - means[s]);
+    let mut start = 0;
+    while start < n_rows {
+        let end = (start + block_rows).min(n_rows);
+        let length = end - start;
+        for c in 0..n_columns {
+            let values = &column(c)[start..end];
+            let slot = c * block_rows;
+            for (i, (&x, &w)) in values.iter().zip(&weights[start..end]).enumerate() {
+                let value = x - means[c];
+                centred[slot + i] = value;
+                weighted[slot + i] = w * value;
             }
         }
+        for r in 0..n_columns {
+            let a = &weighted[r * block_rows..r * block_rows + length];
+            for s in r..n_columns {
+                let b = &centred[s * block_rows..s * block_rows + length];
+                cross[(r, s)] += dot(a, b);
+            }
+        }
+        start = end;
     }
     sweep_for_aliasing(cross)
+}
+
+/// Σ aᵢbᵢ with four independent partial sums, so the additions overlap.
+fn dot(a: &[f64], b: &[f64]) -> f64 {
+    let length = a.len().min(b.len());
+    let (a, b) = (&a[..length], &b[..length]);
+    let mut sums = [0.0_f64; 4];
+    let mut i = 0;
+    while i + 4 <= length {
+        for k in 0..4 {
+            sums[k] += a[i + k] * b[i + k];
+        }
+        i += 4;
+    }
+    let mut total = (sums[0] + sums[1]) + (sums[2] + sums[3]);
+    while i < length {
+        total += a[i] * b[i];
+        i += 1;
+    }
+    total
 }
 
 /// Given an upper-triangle-filled symmetric positive semi-definite matrix, returns the indices
@@ -957,8 +1037,7 @@ struct EngineOutcome {
 /// Layout of the parameter vector and everything one pass over the rows needs.
 struct Problem<'a> {
     link: CumulativeLink,
-    /// Column-major design values.
-    x: &'a [f64],
+    design: DesignColumns<'a>,
     n_rows: usize,
     response: &'a [usize],
     weights: &'a [f64],
@@ -1005,7 +1084,7 @@ impl Problem<'_> {
     }
 
     fn value(&self, row: usize, column: usize) -> f64 {
-        self.x[column * self.n_rows + row]
+        self.design.get(row, column)
     }
 
     /// One pass over the rows: log-likelihood and, when asked, gradient and Hessian of the
@@ -1229,7 +1308,7 @@ fn validate_options(options: &CumulativeLinkOptions) -> Result<(), ModelInputErr
 }
 
 fn fit_engine(
-    design: &DMatrix<f64>,
+    design: DesignColumns<'_>,
     response: &[usize],
     n_categories: usize,
     weights: Option<&[f64]>,
@@ -1266,7 +1345,7 @@ fn fit_engine(
     let n_parameters = n_cut_points * (1 + n_nominal) + common_columns.len();
     let problem = Problem {
         link: options.link,
-        x: design.as_slice(),
+        design,
         n_rows: design.nrows(),
         response,
         weights: &prepared.weights,
@@ -1679,9 +1758,10 @@ mod tests {
         let n_nominal = nominal_columns.len();
         let common_columns: Vec<usize> = (0..2).filter(|c| !nominal_columns.contains(c)).collect();
         let n_parameters = 3 * (1 + n_nominal) + common_columns.len();
+        let all = every_column(design.ncols());
         let problem = Problem {
             link,
-            x: design.as_slice(),
+            design: DesignColumns::new(&design, &all).expect("in range"),
             n_rows: 10,
             response: &response,
             weights: &weights,
@@ -1778,7 +1858,11 @@ mod tests {
             [a, b, a + b][c]
         });
         assert_eq!(
-            aliased_columns_with_implicit_intercept(&design, &[1.0; 6], 6.0),
+            aliased_columns_with_implicit_intercept(
+                DesignColumns::new(&design, &every_column(3)).expect("in range"),
+                &[1.0; 6],
+                6.0
+            ),
             vec![2]
         );
     }

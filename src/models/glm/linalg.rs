@@ -189,22 +189,33 @@ impl BlockNonZeros {
 pub(crate) struct SparseRows {
     n_rows: usize,
     n_columns: usize,
+    /// Per design column: whether its non-zeros are stored (the columns of the fit).
+    held: Vec<bool>,
     row_starts: Vec<usize>,
     columns: Vec<u32>,
     values: Vec<f64>,
 }
 
 impl SparseRows {
-    /// The rows of `design`, or `None` when it is not sparse enough to be worth it.
-    pub(crate) fn of(design: &DMatrix<f64>) -> Option<SparseRows> {
+    /// The rows of `design` over the `fitted` columns (ascending), or `None` when they are not sparse
+    /// enough to be worth it.
+    pub(crate) fn of(design: &DMatrix<f64>, fitted: &[usize]) -> Option<SparseRows> {
         let (n_rows, n_columns) = design.shape();
-        let all: Vec<usize> = (0..n_columns).collect();
         let data = design.as_slice();
-        if n_rows == 0 || n_columns > u32::MAX as usize || !is_sparse(data, n_rows, &all) {
+        if n_rows == 0
+            || n_columns > u32::MAX as usize
+            || fitted.windows(2).any(|pair| pair[0] >= pair[1])
+            || fitted.last().is_some_and(|&last| last >= n_columns)
+            || !is_sparse(data, n_rows, fitted)
+        {
             return None;
         }
+        let mut held = vec![false; n_columns];
+        for &column in fitted {
+            held[column] = true;
+        }
         let mut row_starts = vec![0usize; n_rows + 1];
-        for column in 0..n_columns {
+        for &column in fitted {
             let values = &data[column * n_rows..(column + 1) * n_rows];
             for (count, &x) in row_starts[1..].iter_mut().zip(values) {
                 *count += usize::from(x != 0.0);
@@ -217,7 +228,7 @@ impl SparseRows {
         let mut columns = vec![0u32; n_entries];
         let mut values = vec![0.0; n_entries];
         let mut next = row_starts[..n_rows].to_vec();
-        for column in 0..n_columns {
+        for &column in fitted {
             let column_values = &data[column * n_rows..(column + 1) * n_rows];
             for (row, &x) in column_values.iter().enumerate() {
                 if x != 0.0 {
@@ -230,6 +241,7 @@ impl SparseRows {
         Some(SparseRows {
             n_rows,
             n_columns,
+            held,
             row_starts,
             columns,
             values,
@@ -285,11 +297,13 @@ fn sparse_weighted_cross_product(
     right_hand_side: Option<&[f64]>,
 ) -> (DMatrix<f64>, DVector<f64>) {
     // The stored rows list columns in ascending order; they give the gathered order only
-    // when the active columns are ascending too.
+    // when the active columns are ascending too, and every non-zero only when they hold
+    // every active column.
     let rows = rows.filter(|rows| {
         rows.n_rows == design.nrows()
             && rows.n_columns == design.ncols()
             && active.windows(2).all(|pair| pair[0] < pair[1])
+            && active.iter().all(|&column| rows.held[column])
     });
     let mut position_of = vec![usize::MAX; design.ncols()];
     for (a, &column) in active.iter().enumerate() {
@@ -546,10 +560,20 @@ mod tests {
         let dense = dense_weighted_cross_product(&design, &active, &weights, Some(&response));
         let sparse =
             sparse_weighted_cross_product(&design, None, &active, &weights, Some(&response));
-        let rows = SparseRows::of(&design).expect("a design of dummies is sparse");
+        let every: Vec<usize> = (0..design.ncols()).collect();
+        let rows = SparseRows::of(&design, &every).expect("a design of dummies is sparse");
         let stored =
             weighted_cross_product_from(&design, Some(&rows), &active, &weights, Some(&response));
-        for other in [&stored] {
+        // Rows stored for the active columns only (a fit on a column subset).
+        let rows_of_active = SparseRows::of(&design, &active).expect("still sparse");
+        let stored_active = weighted_cross_product_from(
+            &design,
+            Some(&rows_of_active),
+            &active,
+            &weights,
+            Some(&response),
+        );
+        for other in [&stored, &stored_active] {
             for (a, b) in dense.0.iter().zip(other.0.iter()) {
                 assert_eq!(a.to_bits(), b.to_bits());
             }

@@ -132,6 +132,10 @@ pub struct GlmData<'a> {
     /// Prior weights (binomial: number of trials); one when absent. Rows of weight zero are
     /// ignored by the fit.
     pub prior_weights: Option<&'a [f64]>,
+    /// The design columns the model uses, strictly ascending; every column when absent. A fit
+    /// on a subset is the fit on a copy of those columns, to the bit, without the copy; its
+    /// coefficient vectors and column indices then count positions in this list.
+    pub columns: Option<&'a [usize]>,
 }
 
 impl<'a> GlmData<'a> {
@@ -141,6 +145,7 @@ impl<'a> GlmData<'a> {
             response,
             offset: None,
             prior_weights: None,
+            columns: None,
         }
     }
     pub fn with_offset(self, offset: &'a [f64]) -> GlmData<'a> {
@@ -152,6 +157,13 @@ impl<'a> GlmData<'a> {
     pub fn with_prior_weights(self, prior_weights: &'a [f64]) -> GlmData<'a> {
         GlmData {
             prior_weights: Some(prior_weights),
+            ..self
+        }
+    }
+    /// The same data with the model restricted to `columns` of the design (strictly ascending).
+    pub fn with_columns(self, columns: &'a [usize]) -> GlmData<'a> {
+        GlmData {
+            columns: Some(columns),
             ..self
         }
     }
@@ -309,6 +321,8 @@ const ALIASING_TOLERANCE: f64 = 1e-11;
 /// Checked inputs with defaults filled in.
 pub(crate) struct PreparedData<'a> {
     pub(crate) design: &'a DMatrix<f64>,
+    /// The design columns of the model, ascending (all of them unless the data named a subset).
+    pub(crate) columns: Vec<usize>,
     pub(crate) sparse_rows: Option<SparseRows>,
     pub(crate) response: &'a [f64],
     pub(crate) offset: Vec<f64>,
@@ -389,7 +403,29 @@ pub(crate) fn prepare<'a>(
             found: data.response.len(),
         });
     }
-    for column in 0..n_columns {
+    let columns: Vec<usize> = match data.columns {
+        Some(columns) => {
+            if columns.is_empty() {
+                return Err(GlmError::EmptyData);
+            }
+            if let Some(&column) = columns.iter().find(|&&column| column >= n_columns) {
+                return Err(GlmError::InvalidOption {
+                    detail: format!(
+                        "column {column} is not a column of the design ({n_columns} columns)"
+                    ),
+                });
+            }
+            if columns.windows(2).any(|pair| pair[0] >= pair[1]) {
+                return Err(GlmError::InvalidOption {
+                    detail: "the model's columns must be listed in strictly ascending order"
+                        .to_string(),
+                });
+            }
+            columns.to_vec()
+        }
+        None => (0..n_columns).collect(),
+    };
+    for &column in &columns {
         for row in 0..n_rows {
             if !design[(row, column)].is_finite() {
                 return Err(GlmError::NonFiniteInput {
@@ -462,7 +498,8 @@ pub(crate) fn prepare<'a>(
     }
     Ok(PreparedData {
         design,
-        sparse_rows: SparseRows::of(design),
+        sparse_rows: SparseRows::of(design, &columns),
+        columns,
         response: data.response,
         offset,
         weights,
@@ -471,16 +508,24 @@ pub(crate) fn prepare<'a>(
 
 /// The estimable columns: all columns minus those aliased on the prior-weighted cross-product.
 pub(crate) fn estimable_columns(prepared: &PreparedData) -> (Vec<usize>, Vec<usize>) {
-    let all: Vec<usize> = (0..prepared.design.ncols()).collect();
+    let all = &prepared.columns;
     let (cross, _) = weighted_cross_product_from(
         prepared.design,
         prepared.sparse_rows.as_ref(),
-        &all,
+        all,
         &prepared.weights,
         None,
     );
-    let aliased = aliased_columns(&cross, ALIASING_TOLERANCE);
-    let active = all.into_iter().filter(|j| !aliased.contains(j)).collect();
+    // Positions in `all`, turned back into design columns.
+    let aliased: Vec<usize> = aliased_columns(&cross, ALIASING_TOLERANCE)
+        .into_iter()
+        .map(|position| all[position])
+        .collect();
+    let active = all
+        .iter()
+        .copied()
+        .filter(|j| !aliased.contains(j))
+        .collect();
     (active, aliased)
 }
 
@@ -711,7 +756,15 @@ fn assemble(
         penalised_log_likelihood,
     } = estimation;
     let problem = prepared.problem();
-    let n_columns = prepared.design.ncols();
+    // Results count positions in the model's columns; `position_of` maps a design column there.
+    let n_columns = prepared.columns.len();
+    let position_of = |column: usize| {
+        prepared
+            .columns
+            .binary_search(&column)
+            .unwrap_or(usize::MAX)
+    };
+    let aliased: Vec<usize> = aliased.iter().map(|&column| position_of(column)).collect();
     let n_used = prepared.weights.iter().filter(|w| **w > 0.0).count();
     let rank = active.len();
     let residual_df = n_used.saturating_sub(rank);
@@ -742,7 +795,9 @@ fn assemble(
     if options.method == Method::MaximumLikelihood
         && let Some(columns) = separation_columns(&kernel, &problem, active, &outcome)
     {
-        stop_reason = StopReason::Separation { columns };
+        stop_reason = StopReason::Separation {
+            columns: columns.into_iter().map(position_of).collect(),
+        };
     }
 
     let mut pearson_chi_square = 0.0;
@@ -801,10 +856,11 @@ fn assemble(
     let mut standard_errors = vec![None; n_columns];
     let mut covariance = DMatrix::<f64>::zeros(n_columns, n_columns);
     for (a, &column_a) in active.iter().enumerate() {
-        coefficients[column_a] = Some(outcome.coefficients[a]);
-        standard_errors[column_a] = Some(active_covariance[(a, a)].max(0.0).sqrt());
+        let position_a = position_of(column_a);
+        coefficients[position_a] = Some(outcome.coefficients[a]);
+        standard_errors[position_a] = Some(active_covariance[(a, a)].max(0.0).sqrt());
         for (b, &column_b) in active.iter().enumerate() {
-            covariance[(column_a, column_b)] = active_covariance[(a, b)];
+            covariance[(position_a, position_of(column_b))] = active_covariance[(a, b)];
         }
     }
     let log_likelihood = family::log_likelihood(

@@ -64,7 +64,8 @@ pub fn profile_interval(
         });
     }
     let prepared = prepare(data, options)?;
-    let n_columns = prepared.design.ncols();
+    // `coefficient` and the fit's vectors count positions in the model's columns.
+    let n_columns = prepared.columns.len();
     if coefficient >= n_columns || fit.coefficients.len() != n_columns {
         return Err(GlmError::ProfileFailure {
             detail: format!("coefficient {coefficient} is not a column of the design"),
@@ -85,6 +86,7 @@ pub fn profile_interval(
     }
     let others: Vec<usize> = (0..n_columns)
         .filter(|&j| j != coefficient && fit.coefficients[j].is_some())
+        .map(|j| prepared.columns[j])
         .collect();
     let theta = fit.theta.as_ref().map_or(1.0, |t| t.theta);
     let mut profile = Profiler {
@@ -94,7 +96,7 @@ pub fn profile_interval(
         weights: &prepared.weights,
         base_offset: &prepared.offset,
         design: prepared.design,
-        coefficient,
+        coefficient: prepared.columns[coefficient],
         others,
         warm_start: fit.linear_predictors.clone(),
         fitted_deviance: fit.deviance,
