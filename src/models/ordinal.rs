@@ -34,6 +34,7 @@ use std::fmt;
 use nalgebra::{DMatrix, DVector};
 use statrs::distribution::{ContinuousCDF, Normal};
 
+use super::glm::linalg::{BlockNonZeros, ROW_BLOCK};
 use super::{DesignColumns, StopReason, every_column};
 
 /// The link function `g` of a cumulative link model.
@@ -1060,6 +1061,8 @@ struct Workspace {
     /// Local positions that contribute in the current row: the cut-point and nominal
     /// positions of the blocks present and the common columns whose value is not zero.
     contributing: Vec<usize>,
+    /// The non-zero common-column entries of a block of rows, gathered column by column.
+    non_zeros: BlockNonZeros,
 }
 
 enum Evaluation {
@@ -1104,139 +1107,153 @@ impl Problem<'_> {
         let n_nominal = self.nominal_columns.len();
         let n_parameters = self.n_parameters;
         let beta_offset = self.beta_offset();
-        let n_common = self.common_columns.len();
         let block = 1 + n_nominal;
         if with_derivatives {
             workspace.gradient.iter_mut().for_each(|v| *v = 0.0);
             workspace.hessian.iter_mut().for_each(|v| *v = 0.0);
         }
         let mut log_likelihood = crate::models::CompensatedSum::default();
-        // Local layout: [upper block (theta_j, gamma_j)] [lower block] [common coefficients].
-        let local_size = 2 * block + n_common;
-        for position in 0..n_common {
-            workspace.local_index[2 * block + position] = beta_offset + position;
-        }
-        for row in 0..self.n_rows {
-            let weight = self.weights[row];
-            if weight == 0.0 {
-                continue;
-            }
-            let category = self.response[row];
-            let mut eta_common = 0.0;
-            for (position, &column) in self.common_columns.iter().enumerate() {
-                let value = self.value(row, column);
-                eta_common += value * parameters[beta_offset + position];
-                workspace.upper_derivative[2 * block + position] = -value;
-                workspace.lower_derivative[2 * block + position] = -value;
-            }
-            for (position, &column) in self.nominal_columns.iter().enumerate() {
-                workspace.nominal_values[position] = self.value(row, column);
-            }
-            let cut_value = |cut_point: usize, values: &[f64]| {
-                let gamma = self.gamma_offset(cut_point);
-                let mut shift = 0.0;
-                for m in 0..n_nominal {
-                    shift += values[m] * parameters[gamma + m];
-                }
-                parameters[cut_point] - eta_common - shift
-            };
-            let upper =
-                (category < n_cut_points).then(|| cut_value(category, &workspace.nominal_values));
-            let lower = (category > 0).then(|| cut_value(category - 1, &workspace.nominal_values));
-            let probability = interval_probability(self.link, upper, lower);
-            if probability.is_nan() || probability <= 0.0 || !probability.is_finite() {
-                return Evaluation::Infeasible;
-            }
-            log_likelihood.add(weight * probability.pln());
-            if !with_derivatives {
-                continue;
-            }
-            let (a, a_prime) = match upper {
-                Some(u) => {
-                    let (density, derivative) = self.link.density_and_derivative(u);
-                    (density / probability, derivative / probability)
-                }
-                None => (0.0, 0.0),
-            };
-            let (b, b_prime) = match lower {
-                Some(l) => {
-                    let (density, derivative) = self.link.density_and_derivative(l);
-                    (density / probability, derivative / probability)
-                }
-                None => (0.0, 0.0),
-            };
-            // Fill the local derivative vectors; an absent block gets index usize::MAX.
-            for m in 0..block {
-                workspace.upper_derivative[m] = 0.0;
-                workspace.lower_derivative[m] = 0.0;
-                workspace.upper_derivative[block + m] = 0.0;
-                workspace.lower_derivative[block + m] = 0.0;
-            }
-            if upper.is_some() {
-                workspace.local_index[0] = category;
-                workspace.upper_derivative[0] = 1.0;
-                let gamma = self.gamma_offset(category);
-                for m in 0..n_nominal {
-                    workspace.local_index[1 + m] = gamma + m;
-                    workspace.upper_derivative[1 + m] = -workspace.nominal_values[m];
-                }
-            } else {
-                for m in 0..block {
-                    workspace.local_index[m] = usize::MAX;
-                }
-            }
-            if lower.is_some() {
-                workspace.local_index[block] = category - 1;
-                workspace.lower_derivative[block] = 1.0;
-                let gamma = self.gamma_offset(category - 1);
-                for m in 0..n_nominal {
-                    workspace.local_index[block + 1 + m] = gamma + m;
-                    workspace.lower_derivative[block + 1 + m] = -workspace.nominal_values[m];
-                }
-            } else {
-                for m in 0..block {
-                    workspace.local_index[block + m] = usize::MAX;
-                }
-            }
-            for r in 0..local_size {
-                workspace.combined[r] =
-                    a * workspace.upper_derivative[r] - b * workspace.lower_derivative[r];
-            }
-            // A common column whose value is zero in this row adds ±0 to every gradient and
-            // Hessian entry it touches (its derivatives are ±0 and all factors are finite),
-            // which leaves each sum unchanged bit for bit; skipping it makes the pass cost
-            // the square of the row's non-zeros (one site dummy of many) rather than of p.
-            workspace.contributing.clear();
-            for r in 0..local_size {
-                if workspace.local_index[r] == usize::MAX {
+        // Local layout: [upper block (theta_j, gamma_j)] [lower block] [the row's non-zero
+        // common coefficients, in column order].
+        let data = self.design.matrix().as_slice();
+        let common_in_matrix: Vec<usize> = self
+            .common_columns
+            .iter()
+            .map(|&column| self.design.matrix_columns()[column])
+            .collect();
+        let mut block_start = 0;
+        while block_start < self.n_rows {
+            let block_end = (block_start + ROW_BLOCK).min(self.n_rows);
+            workspace.non_zeros.gather(
+                data,
+                self.n_rows,
+                &common_in_matrix,
+                block_start..block_end,
+            );
+            for row in block_start..block_end {
+                let weight = self.weights[row];
+                if weight == 0.0 {
                     continue;
                 }
-                if r >= 2 * block && workspace.upper_derivative[r] == 0.0 {
+                let category = self.response[row];
+                // A zero entry would add ±0 to the linear predictor and its derivatives are ±0,
+                // which leaves every sum below unchanged bit for bit; only the non-zeros are kept.
+                let (positions, values) = workspace.non_zeros.row(row - block_start);
+                let local_size = 2 * block + positions.len();
+                let mut eta_common = 0.0;
+                for (k, (&position, &value)) in positions.iter().zip(values).enumerate() {
+                    eta_common += value * parameters[beta_offset + position];
+                    workspace.local_index[2 * block + k] = beta_offset + position;
+                    workspace.upper_derivative[2 * block + k] = -value;
+                    workspace.lower_derivative[2 * block + k] = -value;
+                }
+                for (position, &column) in self.nominal_columns.iter().enumerate() {
+                    workspace.nominal_values[position] = self.value(row, column);
+                }
+                let cut_value = |cut_point: usize, values: &[f64]| {
+                    let gamma = self.gamma_offset(cut_point);
+                    let mut shift = 0.0;
+                    for m in 0..n_nominal {
+                        shift += values[m] * parameters[gamma + m];
+                    }
+                    parameters[cut_point] - eta_common - shift
+                };
+                let upper = (category < n_cut_points)
+                    .then(|| cut_value(category, &workspace.nominal_values));
+                let lower =
+                    (category > 0).then(|| cut_value(category - 1, &workspace.nominal_values));
+                let probability = interval_probability(self.link, upper, lower);
+                if probability.is_nan() || probability <= 0.0 || !probability.is_finite() {
+                    return Evaluation::Infeasible;
+                }
+                log_likelihood.add(weight * probability.pln());
+                if !with_derivatives {
                     continue;
                 }
-                workspace.contributing.push(r);
-            }
-            for (position_r, &r) in workspace.contributing.iter().enumerate() {
-                let global_r = workspace.local_index[r];
-                let combined_r = workspace.combined[r];
-                workspace.gradient[global_r] += weight * combined_r;
-                let upper_r = a_prime * workspace.upper_derivative[r];
-                let lower_r = b_prime * workspace.lower_derivative[r];
-                for &s in &workspace.contributing[position_r..] {
-                    let global_s = workspace.local_index[s];
-                    let term = upper_r * workspace.upper_derivative[s]
-                        - lower_r * workspace.lower_derivative[s]
-                        - combined_r * workspace.combined[s];
-                    let (first, second) = if global_r <= global_s {
-                        (global_r, global_s)
-                    } else {
-                        (global_s, global_r)
-                    };
-                    // A diagonal pair reached from two local positions cannot occur: each global
-                    // index appears once per row, so (r, s) and (s, r) are never both visited.
-                    workspace.hessian[first * n_parameters + second] += weight * term;
+                let (a, a_prime) = match upper {
+                    Some(u) => {
+                        let (density, derivative) = self.link.density_and_derivative(u);
+                        (density / probability, derivative / probability)
+                    }
+                    None => (0.0, 0.0),
+                };
+                let (b, b_prime) = match lower {
+                    Some(l) => {
+                        let (density, derivative) = self.link.density_and_derivative(l);
+                        (density / probability, derivative / probability)
+                    }
+                    None => (0.0, 0.0),
+                };
+                // Fill the local derivative vectors; an absent block gets index usize::MAX.
+                for m in 0..block {
+                    workspace.upper_derivative[m] = 0.0;
+                    workspace.lower_derivative[m] = 0.0;
+                    workspace.upper_derivative[block + m] = 0.0;
+                    workspace.lower_derivative[block + m] = 0.0;
+                }
+                if upper.is_some() {
+                    workspace.local_index[0] = category;
+                    workspace.upper_derivative[0] = 1.0;
+                    let gamma = self.gamma_offset(category);
+                    for m in 0..n_nominal {
+                        workspace.local_index[1 + m] = gamma + m;
+                        workspace.upper_derivative[1 + m] = -workspace.nominal_values[m];
+                    }
+                } else {
+                    for m in 0..block {
+                        workspace.local_index[m] = usize::MAX;
+                    }
+                }
+                if lower.is_some() {
+                    workspace.local_index[block] = category - 1;
+                    workspace.lower_derivative[block] = 1.0;
+                    let gamma = self.gamma_offset(category - 1);
+                    for m in 0..n_nominal {
+                        workspace.local_index[block + 1 + m] = gamma + m;
+                        workspace.lower_derivative[block + 1 + m] = -workspace.nominal_values[m];
+                    }
+                } else {
+                    for m in 0..block {
+                        workspace.local_index[block + m] = usize::MAX;
+                    }
+                }
+                for r in 0..local_size {
+                    workspace.combined[r] =
+                        a * workspace.upper_derivative[r] - b * workspace.lower_derivative[r];
+                }
+                // Only the row's non-zero common columns are in the local layout: a zero one adds
+                // ±0 to every gradient and Hessian entry it touches (its derivatives are ±0 and all
+                // factors are finite), which leaves each sum unchanged bit for bit, so the pass
+                // costs the square of the row's non-zeros (one site dummy of many), not of p.
+                workspace.contributing.clear();
+                for r in 0..local_size {
+                    if workspace.local_index[r] != usize::MAX {
+                        workspace.contributing.push(r);
+                    }
+                }
+                for (position_r, &r) in workspace.contributing.iter().enumerate() {
+                    let global_r = workspace.local_index[r];
+                    let combined_r = workspace.combined[r];
+                    workspace.gradient[global_r] += weight * combined_r;
+                    let upper_r = a_prime * workspace.upper_derivative[r];
+                    let lower_r = b_prime * workspace.lower_derivative[r];
+                    for &s in &workspace.contributing[position_r..] {
+                        let global_s = workspace.local_index[s];
+                        let term = upper_r * workspace.upper_derivative[s]
+                            - lower_r * workspace.lower_derivative[s]
+                            - combined_r * workspace.combined[s];
+                        let (first, second) = if global_r <= global_s {
+                            (global_r, global_s)
+                        } else {
+                            (global_s, global_r)
+                        };
+                        // A diagonal pair reached from two local positions cannot occur: each global
+                        // index appears once per row, so (r, s) and (s, r) are never both visited.
+                        workspace.hessian[first * n_parameters + second] += weight * term;
+                    }
                 }
             }
+            block_start = block_end;
         }
         let log_likelihood = log_likelihood.value();
         if !log_likelihood.is_finite() {
@@ -1364,6 +1381,7 @@ fn fit_engine(
         combined: vec![0.0; local_size],
         nominal_values: vec![0.0; n_nominal],
         contributing: Vec::new(),
+        non_zeros: BlockNonZeros::new(problem.common_columns.len()),
     };
 
     // The scale of each parameter's gradient: a coefficient's score grows with its column.
@@ -1780,6 +1798,7 @@ mod tests {
             combined: vec![0.0; local_size],
             nominal_values: vec![0.0; n_nominal],
             contributing: Vec::new(),
+            non_zeros: BlockNonZeros::new(problem.common_columns.len()),
         };
         // Cut-points well apart, small effects: every row has a comfortably positive probability.
         let mut point = vec![0.0; n_parameters];

@@ -41,6 +41,7 @@ fn evaluate(
     let mut linear_predictor = vec![0.0; n_rows];
     linear_predictor_into(
         problem.design,
+        problem.sparse_rows,
         active,
         &coefficients,
         problem.offset,

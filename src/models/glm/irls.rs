@@ -307,6 +307,7 @@ pub(crate) fn run_irls(
         for _ in 0..=MAX_HALVINGS {
             linear_predictor_into(
                 problem.design,
+                problem.sparse_rows,
                 active,
                 &proposal,
                 problem.offset,
@@ -393,7 +394,7 @@ pub(crate) fn score_at(
             0.0
         };
     }
-    transpose_multiply(problem.design, active, buffer)
+    transpose_multiply(problem.design, problem.sparse_rows, active, buffer)
 }
 
 /// The deviance at `coefficients`, or `None` when a mean leaves the family's range; uses the
@@ -408,6 +409,7 @@ fn deviance_at(
 ) -> Option<f64> {
     linear_predictor_into(
         problem.design,
+        problem.sparse_rows,
         active,
         coefficients,
         problem.offset,
@@ -497,6 +499,7 @@ pub(crate) fn separation_columns(
         coefficients = proposal;
         linear_predictor_into(
             problem.design,
+            problem.sparse_rows,
             active,
             &coefficients,
             problem.offset,

@@ -249,6 +249,15 @@ impl SparseRows {
     }
 }
 
+impl SparseRows {
+    /// Whether these are the rows of `design` and hold every one of the `active` columns.
+    fn covers(&self, design: &DMatrix<f64>, active: &[usize]) -> bool {
+        self.n_rows == design.nrows()
+            && self.n_columns == design.ncols()
+            && active.iter().all(|&column| self.held[column])
+    }
+}
+
 /// [`weighted_cross_product`], reading the non-zeros from `rows` when the fit built them.
 pub(crate) fn weighted_cross_product_from(
     design: &DMatrix<f64>,
@@ -299,12 +308,8 @@ fn sparse_weighted_cross_product(
     // The stored rows list columns in ascending order; they give the gathered order only
     // when the active columns are ascending too, and every non-zero only when they hold
     // every active column.
-    let rows = rows.filter(|rows| {
-        rows.n_rows == design.nrows()
-            && rows.n_columns == design.ncols()
-            && active.windows(2).all(|pair| pair[0] < pair[1])
-            && active.iter().all(|&column| rows.held[column])
-    });
+    let rows =
+        rows.filter(|rows| rows.covers(design, active) && active.windows(2).all(|p| p[0] < p[1]));
     let mut position_of = vec![usize::MAX; design.ncols()];
     for (a, &column) in active.iter().enumerate() {
         position_of[column] = a;
@@ -356,13 +361,38 @@ fn sparse_weighted_cross_product(
     (cross, vector)
 }
 
-/// X_activeᵀ v, one contiguous pass per active column.
+/// X_activeᵀ v, one contiguous pass per active column; from the stored rows when the fit
+/// built them, visiting only their non-zeros. Each column's sum still runs over the rows in
+/// order, and a skipped zero entry would add ±0, so the two routes agree in value (a sum of no
+/// non-zero terms may differ in the sign of its zero). A non-finite entry of `vector` takes the
+/// dense route, where 0 · NaN keeps the NaN.
 pub(crate) fn transpose_multiply(
     design: &DMatrix<f64>,
+    rows: Option<&SparseRows>,
     active: &[usize],
     vector: &[f64],
 ) -> DVector<f64> {
     let n_rows = design.nrows();
+    if let Some(rows) = rows.filter(|rows| {
+        rows.covers(design, active)
+            && vector.len() == n_rows
+            && vector.iter().all(|v| v.is_finite())
+    }) {
+        let mut position_of = vec![usize::MAX; design.ncols()];
+        for (a, &column) in active.iter().enumerate() {
+            position_of[column] = a;
+        }
+        let mut totals = vec![-0.0_f64; active.len()];
+        for (row, &v) in vector.iter().enumerate() {
+            for entry in rows.row_starts[row]..rows.row_starts[row + 1] {
+                let position = position_of[rows.columns[entry] as usize];
+                if position != usize::MAX {
+                    totals[position] += rows.values[entry] * v;
+                }
+            }
+        }
+        return DVector::from_vec(totals);
+    }
     let data = design.as_slice();
     DVector::from_iterator(
         active.len(),
@@ -376,15 +406,42 @@ pub(crate) fn transpose_multiply(
     )
 }
 
-/// η = X_active β + offset, written into `linear_predictor` (column by column, contiguous).
+/// η = X_active β + offset, written into `linear_predictor` (column by column, contiguous); from
+/// the stored rows when the fit built them and the active columns ascend, each row's terms
+/// added in the same column order with its zeros skipped (a zero term would add ±0, so the
+/// values agree with the dense route). Non-finite coefficients take the dense route.
 pub(crate) fn linear_predictor_into(
     design: &DMatrix<f64>,
+    rows: Option<&SparseRows>,
     active: &[usize],
     coefficients: &DVector<f64>,
     offset: &[f64],
     linear_predictor: &mut [f64],
 ) {
     let n_rows = design.nrows();
+    if let Some(rows) = rows.filter(|rows| {
+        rows.covers(design, active)
+            && active.windows(2).all(|pair| pair[0] < pair[1])
+            && coefficients.iter().all(|b| b.is_finite())
+    }) {
+        let mut beta_of = vec![0.0; design.ncols()];
+        let mut used = vec![false; design.ncols()];
+        for (a, &column) in active.iter().enumerate() {
+            beta_of[column] = coefficients[a];
+            used[column] = true;
+        }
+        for (row, (eta, &base)) in linear_predictor.iter_mut().zip(offset).enumerate() {
+            let mut value = base;
+            for entry in rows.row_starts[row]..rows.row_starts[row + 1] {
+                let column = rows.columns[entry] as usize;
+                if used[column] {
+                    value += rows.values[entry] * beta_of[column];
+                }
+            }
+            *eta = value;
+        }
+        return;
+    }
     let data = design.as_slice();
     linear_predictor.copy_from_slice(offset);
     for (a, &column) in active.iter().enumerate() {
@@ -587,5 +644,38 @@ mod tests {
         for (a, b) in dense.1.iter().zip(sparse.1.iter()) {
             assert_eq!(a.to_bits(), b.to_bits());
         }
+
+        // Xᵀv and Xβ + offset from the stored rows: the same values as the dense passes (a
+        // zero may differ in sign only), and the dense route when a NaN must propagate.
+        let coefficients = DVector::from_iterator(active.len(), (0..active.len()).map(|_| next()));
+        let offset: Vec<f64> = (0..n_rows).map(|_| next() - 0.5).collect();
+        for rows in [&rows, &rows_of_active] {
+            let from_rows = transpose_multiply(&design, Some(rows), &active, &response);
+            let dense_product = transpose_multiply(&design, None, &active, &response);
+            assert_eq!(from_rows, dense_product);
+            let mut eta_rows = vec![0.0; n_rows];
+            let mut eta_dense = vec![0.0; n_rows];
+            linear_predictor_into(
+                &design,
+                Some(rows),
+                &active,
+                &coefficients,
+                &offset,
+                &mut eta_rows,
+            );
+            linear_predictor_into(
+                &design,
+                None,
+                &active,
+                &coefficients,
+                &offset,
+                &mut eta_dense,
+            );
+            assert_eq!(eta_rows, eta_dense);
+        }
+        let mut with_nan = response.clone();
+        with_nan[3] = f64::NAN;
+        let product = transpose_multiply(&design, Some(&rows), &active, &with_nan);
+        assert!(product.iter().all(|v| v.is_nan()), "{product:?}");
     }
 }
