@@ -26,6 +26,7 @@
 use crate::models::portable::Portable;
 use nalgebra::{DMatrix, DVector};
 
+use super::glm::linalg::{BlockNonZeros, ROW_BLOCK};
 use super::ordinal::{ModelInputError, prepare_common, sweep_for_aliasing};
 use super::{DesignColumns, StopReason, every_column};
 
@@ -189,8 +190,7 @@ pub fn fit_multinomial_logit_on(
         hessian: vec![0.0; n_parameters * n_parameters],
         linear_predictor: vec![0.0; n_free],
         probability: vec![0.0; n_free],
-        x_row: vec![0.0; n_columns],
-        non_zero: Vec::new(),
+        non_zeros: BlockNonZeros::new(n_columns),
     };
 
     // Starting values: a constant column carries the log marginal odds against the reference.
@@ -380,9 +380,8 @@ struct Workspace {
     hessian: Vec<f64>,
     linear_predictor: Vec<f64>,
     probability: Vec<f64>,
-    x_row: Vec<f64>,
-    /// Columns whose entry in the current row is not zero, ascending.
-    non_zero: Vec<usize>,
+    /// The non-zero entries of a block of rows, each row's in ascending column order.
+    non_zeros: BlockNonZeros,
 }
 
 impl Problem<'_> {
@@ -402,82 +401,86 @@ impl Problem<'_> {
             workspace.hessian.iter_mut().for_each(|v| *v = 0.0);
         }
         let mut log_likelihood = crate::models::CompensatedSum::default();
-        for row in 0..self.n_rows {
-            let weight = self.weights[row];
-            if weight == 0.0 {
-                continue;
-            }
-            // Only the row's non-zero entries are visited: a zero entry would add ±0 to the
+        let data = self.design.matrix().as_slice();
+        let columns = self.design.matrix_columns();
+        let mut block_start = 0;
+        while block_start < self.n_rows {
+            let block_end = (block_start + ROW_BLOCK).min(self.n_rows);
+            // Only each row's non-zero entries are visited: a zero entry would add ±0 to the
             // linear predictor, the gradient and the Hessian, which leaves every sum unchanged
-            // bit for bit, and a row of treatment and site dummies has few non-zeros.
-            workspace.non_zero.clear();
-            for c in 0..p {
-                let value = self.design.get(row, c);
-                workspace.x_row[c] = value;
-                if value != 0.0 {
-                    workspace.non_zero.push(c);
+            // bit for bit, and a row of treatment and site dummies has few non-zeros. They are
+            // gathered a block of rows at a time, column by column.
+            workspace
+                .non_zeros
+                .gather(data, self.n_rows, columns, block_start..block_end);
+            for row in block_start..block_end {
+                let weight = self.weights[row];
+                if weight == 0.0 {
+                    continue;
                 }
-            }
-            // Softmax with the reference's linear predictor 0, shifted by the maximum.
-            let mut maximum: f64 = 0.0;
-            for k in 0..n_free {
-                let offset = k * p;
-                let mut eta = 0.0;
-                for &c in &workspace.non_zero {
-                    eta += workspace.x_row[c] * parameters[offset + c];
+                let (positions, values) = workspace.non_zeros.row(row - block_start);
+                // Softmax with the reference's linear predictor 0, shifted by the maximum.
+                let mut maximum: f64 = 0.0;
+                for k in 0..n_free {
+                    let offset = k * p;
+                    let mut eta = 0.0;
+                    for (&c, &x) in positions.iter().zip(values) {
+                        eta += x * parameters[offset + c];
+                    }
+                    workspace.linear_predictor[k] = eta;
+                    maximum = maximum.max(eta);
                 }
-                workspace.linear_predictor[k] = eta;
-                maximum = maximum.max(eta);
-            }
-            let mut total = (-maximum).pexp();
-            for k in 0..n_free {
-                let e = (workspace.linear_predictor[k] - maximum).pexp();
-                workspace.probability[k] = e;
-                total += e;
-            }
-            let log_normaliser = maximum + total.pln();
-            let category = self.response[row];
-            let observed_position = if category == self.reference_category {
-                None
-            } else {
-                self.non_reference_categories
-                    .iter()
-                    .position(|&k| k == category)
-            };
-            let observed_eta = observed_position.map_or(0.0, |k| workspace.linear_predictor[k]);
-            log_likelihood.add(weight * (observed_eta - log_normaliser));
-            if !with_derivatives {
-                continue;
-            }
-            for k in 0..n_free {
-                workspace.probability[k] /= total;
-            }
-            for k in 0..n_free {
-                let residual = if observed_position == Some(k) {
-                    1.0
+                let mut total = (-maximum).pexp();
+                for k in 0..n_free {
+                    let e = (workspace.linear_predictor[k] - maximum).pexp();
+                    workspace.probability[k] = e;
+                    total += e;
+                }
+                let log_normaliser = maximum + total.pln();
+                let category = self.response[row];
+                let observed_position = if category == self.reference_category {
+                    None
                 } else {
-                    0.0
-                } - workspace.probability[k];
-                let offset = k * p;
-                for &c in &workspace.non_zero {
-                    workspace.gradient[offset + c] += weight * residual * workspace.x_row[c];
+                    self.non_reference_categories
+                        .iter()
+                        .position(|&k| k == category)
+                };
+                let observed_eta = observed_position.map_or(0.0, |k| workspace.linear_predictor[k]);
+                log_likelihood.add(weight * (observed_eta - log_normaliser));
+                if !with_derivatives {
+                    continue;
                 }
-                let pi_k = workspace.probability[k];
-                for l in k..n_free {
-                    let pi_l = workspace.probability[l];
-                    let block_weight = -weight * pi_k * (if k == l { 1.0 } else { 0.0 } - pi_l);
-                    let row_start = offset;
-                    let column_start = l * p;
-                    for (position, &c) in workspace.non_zero.iter().enumerate() {
-                        let scaled = block_weight * workspace.x_row[c];
-                        let base = (row_start + c) * n_parameters + column_start;
-                        let first = if k == l { position } else { 0 };
-                        for &d in &workspace.non_zero[first..] {
-                            workspace.hessian[base + d] += scaled * workspace.x_row[d];
+                for k in 0..n_free {
+                    workspace.probability[k] /= total;
+                }
+                for k in 0..n_free {
+                    let residual = if observed_position == Some(k) {
+                        1.0
+                    } else {
+                        0.0
+                    } - workspace.probability[k];
+                    let offset = k * p;
+                    for (&c, &x) in positions.iter().zip(values) {
+                        workspace.gradient[offset + c] += weight * residual * x;
+                    }
+                    let pi_k = workspace.probability[k];
+                    for l in k..n_free {
+                        let pi_l = workspace.probability[l];
+                        let block_weight = -weight * pi_k * (if k == l { 1.0 } else { 0.0 } - pi_l);
+                        let row_start = offset;
+                        let column_start = l * p;
+                        for (position, (&c, &x_c)) in positions.iter().zip(values).enumerate() {
+                            let scaled = block_weight * x_c;
+                            let base = (row_start + c) * n_parameters + column_start;
+                            let first = if k == l { position } else { 0 };
+                            for (&d, &x_d) in positions[first..].iter().zip(&values[first..]) {
+                                workspace.hessian[base + d] += scaled * x_d;
+                            }
                         }
                     }
                 }
             }
+            block_start = block_end;
         }
         let log_likelihood = log_likelihood.value();
         log_likelihood.is_finite().then_some(log_likelihood)
@@ -522,8 +525,7 @@ mod tests {
             hessian: vec![0.0; n_parameters * n_parameters],
             linear_predictor: vec![0.0; 3],
             probability: vec![0.0; 3],
-            x_row: vec![0.0; 3],
-            non_zero: Vec::new(),
+            non_zeros: BlockNonZeros::new(3),
         };
         let point: Vec<f64> = (0..n_parameters).map(|i| 0.2 * (i as f64) - 0.7).collect();
         problem
