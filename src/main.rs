@@ -61,6 +61,10 @@ enum Command {
         /// Replace the output folder if it exists.
         #[arg(long)]
         force: bool,
+        /// Fit up to N analyses at once, one thread each (default 1). The outputs are the same
+        /// bytes for any N; memory grows with N (one design per analysis in flight).
+        #[arg(long, value_name = "N", default_value_t = 1, value_parser = clap::value_parser!(u16).range(1..))]
+        jobs: u16,
     },
     /// Fit every planned analysis and write report.md, report.html, results.json, tables/ and manifest.json.
     Run {
@@ -75,6 +79,10 @@ enum Command {
         /// Run only this analysis (repeatable). A departure from the plan, flagged in the report.
         #[arg(long, value_name = "ANALYSIS")]
         only: Vec<String>,
+        /// Fit up to N analyses at once, one thread each (default 1). The outputs are the same
+        /// bytes for any N; memory grows with N (one design per analysis in flight).
+        #[arg(long, value_name = "N", default_value_t = 1, value_parser = clap::value_parser!(u16).range(1..))]
+        jobs: u16,
     },
     /// Re-hash the inputs of a finished run, re-run it and compare every output byte for byte.
     Verify {
@@ -83,6 +91,10 @@ enum Command {
         /// The plan file, if it is not in the current folder or beside DIR.
         #[arg(long, value_name = "PLAN")]
         plan: Option<PathBuf>,
+        /// Fit up to N analyses at once, one thread each (default 1). The outputs are the same
+        /// bytes for any N; memory grows with N (one design per analysis in flight).
+        #[arg(long, value_name = "N", default_value_t = 1, value_parser = clap::value_parser!(u16).range(1..))]
+        jobs: u16,
     },
     /// Show the lock chain (who, when, why, what changed) and the audit log, checking both.
     History {
@@ -117,6 +129,7 @@ fn main() -> ExitCode {
             out,
             seed,
             force,
+            jobs,
         } => run_plan(
             &plan,
             &out,
@@ -124,6 +137,7 @@ fn main() -> ExitCode {
             RunOptions {
                 mode: Mode::DryRun { seed },
                 only: Vec::new(),
+                jobs: usize::from(jobs),
             },
             "dry-run",
         ),
@@ -132,6 +146,7 @@ fn main() -> ExitCode {
             out,
             force,
             only,
+            jobs,
         } => run_plan(
             &plan,
             &out,
@@ -139,10 +154,11 @@ fn main() -> ExitCode {
             RunOptions {
                 mode: Mode::Unblinded,
                 only,
+                jobs: usize::from(jobs),
             },
             "run",
         ),
-        Command::Verify { dir, plan } => verify(&dir, plan.as_deref()),
+        Command::Verify { dir, plan, jobs } => verify(&dir, plan.as_deref(), usize::from(jobs)),
         Command::History { plan } => cairn::provenance::history::history(&plan).map(|text| {
             print!("{text}");
             ExitCode::SUCCESS
@@ -206,8 +222,8 @@ fn run_plan(
     Ok(ExitCode::SUCCESS)
 }
 
-fn verify(dir: &Path, plan: Option<&Path>) -> Result<ExitCode, cairn::Error> {
-    let verification = cairn::verify::verify(dir, plan)?;
+fn verify(dir: &Path, plan: Option<&Path>, jobs: usize) -> Result<ExitCode, cairn::Error> {
+    let verification = cairn::verify::verify(dir, plan, jobs)?;
     use cairn::verify::Verdict;
     for input in &verification.inputs {
         if input.current_sha256.as_deref() != Some(input.recorded_sha256.as_str()) {

@@ -35,6 +35,10 @@ pub struct RunOptions {
     pub mode: Mode,
     /// Run only these analyses (a command-line override of the plan).
     pub only: Vec<String>,
+    /// Analyses fitted at once, each on its own thread (1: one after another). The outputs do
+    /// not depend on it: every analysis is computed by one thread, whichever, and the results
+    /// are put together in plan order. Memory grows with it (one design per analysis in flight).
+    pub jobs: usize,
 }
 
 impl Default for RunOptions {
@@ -42,8 +46,51 @@ impl Default for RunOptions {
         RunOptions {
             mode: Mode::Unblinded,
             only: Vec::new(),
+            jobs: 1,
         }
     }
+}
+
+/// `work` applied to every item, on up to `jobs` threads, the results in the items' order.
+/// `None` when a worker thread panicked (a defect; the caller reports it as one).
+fn map_in_order<T: Sync, R: Send>(
+    items: &[T],
+    jobs: usize,
+    work: impl Fn(&T) -> R + Sync,
+) -> Option<Vec<R>> {
+    if jobs <= 1 || items.len() <= 1 {
+        return Some(items.iter().map(work).collect());
+    }
+    let next = std::sync::atomic::AtomicUsize::new(0);
+    let slots: Vec<std::sync::Mutex<Option<R>>> = (0..items.len())
+        .map(|_| std::sync::Mutex::new(None))
+        .collect();
+    let finished = std::thread::scope(|scope| {
+        let workers: Vec<_> = (0..jobs.min(items.len()))
+            .map(|_| {
+                scope.spawn(|| {
+                    loop {
+                        let index = next.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                        let Some(item) = items.get(index) else {
+                            break;
+                        };
+                        let result = work(item);
+                        if let Ok(mut slot) = slots[index].lock() {
+                            *slot = Some(result);
+                        }
+                    }
+                })
+            })
+            .collect();
+        workers.into_iter().all(|worker| worker.join().is_ok())
+    });
+    if !finished {
+        return None;
+    }
+    slots
+        .into_iter()
+        .map(|slot| slot.into_inner().ok().flatten())
+        .collect()
 }
 
 /// Everything read from disk for one run, with the digests of the data files
@@ -292,11 +339,12 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
             message: format!("{count} value(s) of {variable} lie outside its declared range {low} to {high} (first at {}); they were analysed as recorded", places.join(", ")),
         });
     }
-    let mut analyses = Vec::new();
-    for analysis in &plan.analyses {
+    // Each analysis is independent of the others: fitted on up to `jobs` threads, its result
+    // and its own departures are then taken in plan order, exactly as one after another.
+    let per_analysis = map_in_order(&plan.analyses, options.jobs, |analysis| {
+        let mut own = Vec::new();
         if !options.only.is_empty() && !options.only.contains(&analysis.id) {
-            analyses.push(not_run(plan, analysis));
-            continue;
+            return Ok((not_run(plan, analysis), own));
         }
         let design = design::build(plan, analysis, &inputs.data)?;
         if let Some(limit) = analysis.max_excluded {
@@ -307,7 +355,7 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
                 .flat_map(|exclusion| exclusion.per_arm.iter())
                 .sum();
             if in_population > 0 && excluded as f64 > limit * in_population as f64 {
-                deviations.push(Deviation {
+                own.push(Deviation {
                     code: "MISSING-ABOVE-PLAN",
                     severity: "major",
                     analysis: Some(analysis.id.clone()),
@@ -319,7 +367,14 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
                 });
             }
         }
-        let result = fit_analysis(plan, analysis, &design, &mut deviations);
+        let result = fit_analysis(plan, analysis, &design, &mut own);
+        Ok::<_, Error>((result, own))
+    })
+    .ok_or_else(|| Error::internal("an analysis thread stopped unexpectedly"))?;
+    let mut analyses = Vec::new();
+    for outcome in per_analysis {
+        let (result, own) = outcome?;
+        deviations.extend(own);
         analyses.push(result);
     }
 

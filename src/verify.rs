@@ -81,7 +81,7 @@ fn bad(message: String, file: &str) -> Error {
 /// Verify the run in `dir`; `plan` overrides where the plan is looked for
 /// (by default: the recorded plan file name in the current folder, then in
 /// the output folder's parent).
-pub fn verify(dir: &Path, plan: Option<&Path>) -> Result<Verification, Error> {
+pub fn verify(dir: &Path, plan: Option<&Path>, jobs: usize) -> Result<Verification, Error> {
     let results_path = dir.join("results.json");
     let shown = results_path.display().to_string();
     let bytes = std::fs::read(&results_path)
@@ -124,7 +124,7 @@ pub fn verify(dir: &Path, plan: Option<&Path>) -> Result<Verification, Error> {
                 .collect()
         })
         .unwrap_or_default();
-    let options = RunOptions { mode, only };
+    let options = RunOptions { mode, only, jobs };
 
     // Re-hash every recorded input where it is now.
     let folder = plan_path

@@ -110,3 +110,74 @@ fn the_demo_report_prints_the_hash_of_the_plan_and_a_complete_manifest() {
         );
     }
 }
+
+/// Every file of a folder, by path relative to it, in sorted order.
+fn files_of(folder: &std::path::Path) -> Vec<(String, Vec<u8>)> {
+    let mut files = Vec::new();
+    let mut pending = vec![folder.to_path_buf()];
+    while let Some(current) = pending.pop() {
+        for entry in std::fs::read_dir(&current).expect("read folder") {
+            let path = entry.expect("folder entry").path();
+            if path.is_dir() {
+                pending.push(path);
+            } else {
+                let name = path
+                    .strip_prefix(folder)
+                    .expect("inside the folder")
+                    .display()
+                    .to_string();
+                files.push((name, std::fs::read(&path).expect("read output")));
+            }
+        }
+    }
+    files.sort();
+    files
+}
+
+/// Common practice for reproducible output: the number of threads must not reach any byte.
+/// The demo's analyses fitted four at a time give the same outputs as one after another, and
+/// `verify` with several threads accepts a run made with one.
+#[test]
+fn fitting_analyses_in_parallel_changes_no_output_byte() {
+    let study = demo_copy("demo-jobs");
+    let one = cairn(&study.path, &["run", "plan.yaml", "--out", "one"]);
+    assert_eq!(one.code, 0, "{}", one.stderr);
+    let four = cairn(
+        &study.path,
+        &["run", "plan.yaml", "--out", "four", "--jobs", "4"],
+    );
+    assert_eq!(four.code, 0, "{}", four.stderr);
+    let (from_one, from_four) = (
+        files_of(&study.path.join("one")),
+        files_of(&study.path.join("four")),
+    );
+    assert!(
+        from_one.len() >= 4,
+        "the run wrote {} files",
+        from_one.len()
+    );
+    let names = |files: &[(String, Vec<u8>)]| {
+        files
+            .iter()
+            .map(|(name, _)| name.clone())
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(names(&from_one), names(&from_four));
+    for ((name, bytes_one), (_, bytes_four)) in from_one.iter().zip(&from_four) {
+        assert!(
+            bytes_one == bytes_four,
+            "{name} differs between --jobs 1 and --jobs 4"
+        );
+    }
+    let verified = cairn(&study.path, &["verify", "one", "--jobs", "3"]);
+    assert_eq!(verified.code, 0, "{}{}", verified.stdout, verified.stderr);
+    let refused = cairn(
+        &study.path,
+        &["run", "plan.yaml", "--out", "none", "--jobs", "0"],
+    );
+    assert_ne!(refused.code, 0, "--jobs 0 was accepted");
+    assert!(
+        !study.path.join("none").exists(),
+        "a refused run left an output folder"
+    );
+}

@@ -353,7 +353,8 @@ fn type_column(
     collector: &mut Collector,
 ) -> Column {
     let cell = |row: usize| table.cell(row, column).trim();
-    let is_missing = |text: &str| missing_codes.iter().any(|code| code.trim() == text);
+    let missing_codes: Vec<&str> = missing_codes.iter().map(|code| code.trim()).collect();
+    let is_missing = |text: &str| missing_codes.contains(&text);
     match kind {
         VariableKind::Numeric | VariableKind::Count => {
             let values = rows
@@ -413,14 +414,21 @@ fn type_column(
             }
         }
         VariableKind::Factor { levels: None } => {
-            let mut levels: Vec<String> = rows
-                .iter()
-                .map(|&row| cell(row))
-                .filter(|text| !is_missing(text))
-                .map(str::to_string)
-                .collect();
-            levels.sort();
-            levels.dedup();
+            // The distinct values, borrowed from the table; the levels are them in sorted
+            // order, so the set's (hash) order never shows.
+            let mut distinct: HashMap<&str, usize> = HashMap::new();
+            for &row in rows {
+                let text = cell(row);
+                if !is_missing(text) && !distinct.contains_key(text) {
+                    distinct.insert(text, 0);
+                }
+            }
+            let mut sorted: Vec<&str> = distinct.keys().copied().collect();
+            sorted.sort_unstable();
+            for (code, text) in sorted.iter().enumerate() {
+                distinct.insert(text, code);
+            }
+            let levels: Vec<String> = sorted.iter().map(|text| text.to_string()).collect();
             if levels.len() > super::MAX_LEVELS {
                 // Every level becomes a design column downstream; refuse rather than build them.
                 collector.push(
@@ -442,9 +450,7 @@ fn type_column(
                     if is_missing(text) {
                         None
                     } else {
-                        levels
-                            .binary_search_by(|level| level.as_str().cmp(text))
-                            .ok()
+                        distinct.get(text).copied()
                     }
                 })
                 .collect();
