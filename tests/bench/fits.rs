@@ -640,7 +640,7 @@ struct ChildCost {
     stderr: String,
 }
 
-fn run_cairn(plan: &Path, out: &Path) -> ChildCost {
+fn run_cairn(plan: &Path, out: &Path, jobs: usize) -> ChildCost {
     let use_time = Path::new("/usr/bin/time").exists();
     let mut command = if use_time {
         let mut command = Command::new("/usr/bin/time");
@@ -657,7 +657,9 @@ fn run_cairn(plan: &Path, out: &Path) -> ChildCost {
         .arg(plan)
         .arg("--out")
         .arg(out)
-        .arg("--force");
+        .arg("--force")
+        .arg("--jobs")
+        .arg(jobs.to_string());
     let start = Instant::now();
     let output = command.output().expect("run cairn");
     let wall = start.elapsed().as_secs_f64();
@@ -687,7 +689,7 @@ fn demo_plan_timing(folder: &Path) {
     let mut walls = Vec::new();
     let mut cpus = Vec::new();
     for _ in 0..5 {
-        let cost = run_cairn(&plan, &out);
+        let cost = run_cairn(&plan, &out, 1);
         assert!(cost.success, "the demo plan failed to run: {}", cost.stderr);
         walls.push(cost.wall);
         cpus.extend(cost.cpu);
@@ -718,54 +720,72 @@ fn large_plan(folder: &Path, n: usize, failures: &mut Vec<String>) {
     let data_bytes = n * synthetic::Trial::N_NUMERIC_SUBJECT_COLUMNS * 8;
     let p = 4 + sites - 1;
     drop(trial);
-    let out = study.join("out");
-    let cost = run_cairn(&study.join("plan.yaml"), &out);
-    let seconds = cost.wall;
-    if !cost.success {
-        failures.push(format!("the {n}-subject plan failed: {}", cost.stderr));
-        return;
-    }
-    let peak_kib = cost.peak_kib;
-    let results: Value = std::fs::read(out.join("results.json"))
-        .ok()
-        .and_then(|bytes| serde_json::from_slice(&bytes).ok())
-        .unwrap_or(Value::Null);
-    let statuses: Vec<String> = results["analyses"]
-        .as_array()
-        .map(|a| {
-            a.iter()
-                .map(|x| {
-                    format!(
-                        "{}: {}",
-                        x["id"].as_str().unwrap_or("?"),
-                        x["status"].as_str().unwrap_or("?")
-                    )
-                })
-                .collect()
-        })
-        .unwrap_or_default();
-    if statuses.len() != 6 || statuses.iter().any(|s| !s.ends_with("fitted")) {
-        failures.push(format!(
-            "the {n}-subject plan did not fit all six analyses: {statuses:?}"
-        ));
-    }
-    let cpu = cost
-        .cpu
-        .map(|c| format!(", CPU {c:.2} s"))
-        .unwrap_or_default();
-    println!(
-        "\n{n}-subject, {sites}-site, six-analysis plan end to end (one run): wall {seconds:.2} s{cpu}; analyses {statuses:?}"
-    );
-    let data_mib = data_bytes as f64 / 1048576.0;
-    let design_mib = (n * p * 8) as f64 / 1048576.0;
-    match peak_kib {
-        Some(kib) => println!(
-            "peak resident memory {:.0} MiB; data as f64 ({n} × {} numeric columns × 8 B) = {data_mib:.0} MiB, target ≤ 3× = {:.0} MiB (ratio {:.1}×); one {n} × {p} design as f64 = {design_mib:.0} MiB",
-            kib / 1024.0,
-            synthetic::Trial::N_NUMERIC_SUBJECT_COLUMNS,
-            3.0 * data_mib,
-            kib / 1024.0 / data_mib
-        ),
-        None => println!("peak memory not measured (/usr/bin/time not available)"),
+    let threads = std::thread::available_parallelism()
+        .map_or(1, |n| n.get())
+        .min(6);
+    let mut one_thread_results: Option<Vec<u8>> = None;
+    for jobs in if threads > 1 {
+        vec![1, threads]
+    } else {
+        vec![1]
+    } {
+        let out = study.join(format!("out-jobs-{jobs}"));
+        let cost = run_cairn(&study.join("plan.yaml"), &out, jobs);
+        let seconds = cost.wall;
+        if !cost.success {
+            failures.push(format!("the {n}-subject plan failed: {}", cost.stderr));
+            return;
+        }
+        let peak_kib = cost.peak_kib;
+        let bytes = std::fs::read(out.join("results.json")).unwrap_or_default();
+        match &one_thread_results {
+            None => one_thread_results = Some(bytes.clone()),
+            Some(first) if *first != bytes => failures.push(format!(
+                "the {n}-subject plan's results.json differs between --jobs 1 and --jobs {jobs}"
+            )),
+            Some(_) => {}
+        }
+        let results: Value = serde_json::from_slice(&bytes).unwrap_or(Value::Null);
+        let statuses: Vec<String> = results["analyses"]
+            .as_array()
+            .map(|a| {
+                a.iter()
+                    .map(|x| {
+                        format!(
+                            "{}: {}",
+                            x["id"].as_str().unwrap_or("?"),
+                            x["status"].as_str().unwrap_or("?")
+                        )
+                    })
+                    .collect()
+            })
+            .unwrap_or_default();
+        if statuses.len() != 6 || statuses.iter().any(|s| !s.ends_with("fitted")) {
+            failures.push(format!(
+                "the {n}-subject plan did not fit all six analyses: {statuses:?}"
+            ));
+        }
+        let cpu = cost
+            .cpu
+            .map(|c| format!(", CPU {c:.2} s"))
+            .unwrap_or_default();
+        println!(
+            "\n{n}-subject, {sites}-site, six-analysis plan end to end with --jobs {jobs} (one run): wall {seconds:.2} s{cpu}; analyses {statuses:?}"
+        );
+        let data_mib = data_bytes as f64 / 1048576.0;
+        let all_variables_mib = (n * synthetic::Trial::N_PLAN_VARIABLES * 8) as f64 / 1048576.0;
+        let design_mib = (n * p * 8) as f64 / 1048576.0;
+        match peak_kib {
+            Some(kib) => println!(
+                "peak resident memory {:.0} MiB; data as f64 ({n} × {} numeric columns × 8 B) = {data_mib:.0} MiB, target ≤ 3× = {:.0} MiB (ratio {:.1}×); every plan variable and the arm as f64 ({} columns) = {all_variables_mib:.0} MiB, 3× = {:.0} MiB; one {n} × {p} design as f64 = {design_mib:.0} MiB",
+                kib / 1024.0,
+                synthetic::Trial::N_NUMERIC_SUBJECT_COLUMNS,
+                3.0 * data_mib,
+                kib / 1024.0 / data_mib,
+                synthetic::Trial::N_PLAN_VARIABLES,
+                3.0 * all_variables_mib
+            ),
+            None => println!("peak memory not measured (/usr/bin/time not available)"),
+        }
     }
 }

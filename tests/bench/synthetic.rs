@@ -293,6 +293,10 @@ impl Trial {
     /// Numeric columns of the subjects file (BASE, CHG, EVENTS, YEARS, EXACERB), the measure of
     /// "the data held as f64" against which peak memory is reported.
     pub const N_NUMERIC_SUBJECT_COLUMNS: usize = 5;
+
+    /// The plan's ten variables and the treatment arm: the wider measure of the data, each
+    /// value held as one f64 (a factor by its code).
+    pub const N_PLAN_VARIABLES: usize = 11;
 }
 
 /// The six-analysis plan of the end-to-end study (schema: plans/README.md).
