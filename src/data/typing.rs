@@ -3,7 +3,7 @@
 use super::Table;
 use crate::error::{Error, ErrorKind, Location, Problem};
 use crate::plan::{Plan, UnmatchedRule, VariableKind};
-use std::collections::{HashMap, HashSet};
+use std::collections::HashMap;
 
 /// How many value problems are listed before the rest are summarised; a file
 /// with a wrong delimiter would otherwise produce one message per cell.
@@ -137,23 +137,24 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
         ));
     };
 
-    let subject_rows = unique_keys(subjects, subject_key, &mut collector);
-    let allocation_rows = unique_keys(allocation, allocation_key, &mut collector);
+    let (subject_rows, subject_index) = unique_keys(subjects, subject_key, &mut collector);
+    let (allocation_rows, allocation_index) =
+        unique_keys(allocation, allocation_key, &mut collector);
     collector.finish()?;
     let mut collector = Collector {
         problems: Vec::new(),
         suppressed: 0,
     };
 
-    // Arms of every allocation row, checked against the plan's levels. The hash
-    // maps and sets here are only looked up, never iterated, so their order
-    // cannot reach any output.
-    let mut arm_of_key: HashMap<&str, usize> = HashMap::with_capacity(allocation.n_rows());
-    for row in 0..allocation.n_rows() {
+    // Arms of every allocation row, checked against the plan's levels. The key
+    // indexes are hash maps that are only looked up, never iterated, so their
+    // order cannot reach any output.
+    let mut arm_of_allocation_row: Vec<Option<usize>> = vec![None; allocation.n_rows()];
+    for (row, slot) in arm_of_allocation_row.iter_mut().enumerate() {
         let code = allocation.cell(row, arm_column).trim();
         match treatment.arms.iter().position(|arm| arm.code == code) {
             Some(arm) => {
-                arm_of_key.insert(allocation.cell(row, allocation_key).trim(), arm);
+                *slot = Some(arm);
             }
             None => {
                 let levels: Vec<&str> =
@@ -172,15 +173,25 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
         }
     }
 
+    // Per subject (in file order): the arm of its allocation row, if it has one with a
+    // planned arm.
+    let arm_of_subject: Vec<Option<usize>> = subject_rows
+        .iter()
+        .map(|(id, _)| {
+            allocation_index
+                .get(id)
+                .and_then(|&row| arm_of_allocation_row[row])
+        })
+        .collect();
     let only_in_subjects: Vec<String> = subject_rows
         .iter()
-        .filter(|(id, _)| !arm_of_key.contains_key(id))
-        .map(|(id, _)| id.to_string())
+        .zip(&arm_of_subject)
+        .filter(|(_, arm)| arm.is_none())
+        .map(|((id, _), _)| id.to_string())
         .collect();
-    let subject_set: HashSet<&str> = subject_rows.iter().map(|&(id, _)| id).collect();
     let only_in_allocation: Vec<String> = allocation_rows
         .iter()
-        .filter(|(id, _)| !subject_set.contains(id))
+        .filter(|(id, _)| !subject_index.contains_key(id))
         .map(|(id, _)| id.to_string())
         .collect();
     // A subject whose arm was rejected above would also count as unmatched;
@@ -218,18 +229,14 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
         );
     }
 
-    let matched_rows: Vec<usize> = subject_rows
+    let (matched_rows, arms): (Vec<usize>, Vec<usize>) = subject_rows
         .iter()
-        .filter(|(id, _)| arm_of_key.contains_key(id))
-        .map(|(_, row)| *row)
-        .collect();
+        .zip(&arm_of_subject)
+        .filter_map(|((_, row), arm)| arm.map(|arm| (*row, arm)))
+        .unzip();
     let subject_ids: Vec<String> = matched_rows
         .iter()
         .map(|row| subjects.cell(*row, subject_key).trim().to_string())
-        .collect();
-    let arms: Vec<usize> = subject_ids
-        .iter()
-        .map(|id| arm_of_key.get(id.as_str()).copied().unwrap_or(0))
         .collect();
 
     let mut columns = Vec::with_capacity(plan.variables.len());
@@ -311,13 +318,15 @@ fn require_column(
 }
 
 /// Keys in file order with their row; duplicates and empty keys are problems.
+/// The non-empty keys of `column` in file order with their rows, and an index from key to
+/// row; an empty or repeated key is a problem (the repeat is left out).
 fn unique_keys<'a>(
     table: &'a Table,
     column: usize,
     collector: &mut Collector,
-) -> Vec<(&'a str, usize)> {
+) -> (Vec<(&'a str, usize)>, HashMap<&'a str, usize>) {
     // Looked up, never iterated: its order cannot reach any output.
-    let mut first_line: HashMap<&str, usize> = HashMap::with_capacity(table.n_rows());
+    let mut first_row: HashMap<&str, usize> = HashMap::with_capacity(table.n_rows());
     let mut keys = Vec::with_capacity(table.n_rows());
     for row in 0..table.n_rows() {
         let key = table.cell(row, column).trim();
@@ -328,20 +337,27 @@ fn unique_keys<'a>(
             );
             continue;
         }
-        if let Some(line) = first_line.get(key) {
-            collector.push(
-                Problem::new(
-                    ErrorKind::DataValue,
-                    format!("subject key \"{key}\" appears twice (first on line {line})"),
-                )
-                .at(table.cell_location(row, column)),
-            );
-            continue;
+        match first_row.entry(key) {
+            std::collections::hash_map::Entry::Occupied(first) => {
+                collector.push(
+                    Problem::new(
+                        ErrorKind::DataValue,
+                        format!(
+                            "subject key \"{key}\" appears twice (first on line {})",
+                            table.lines[*first.get()]
+                        ),
+                    )
+                    .at(table.cell_location(row, column)),
+                );
+                continue;
+            }
+            std::collections::hash_map::Entry::Vacant(slot) => {
+                slot.insert(row);
+            }
         }
-        first_line.insert(key, table.lines[row]);
         keys.push((key, row));
     }
-    keys
+    (keys, first_row)
 }
 
 fn type_column(
