@@ -177,8 +177,15 @@ impl Kernel {
 
     /// The observed-information weight of one row, −∂²lᵢ/∂ηᵢ² (up to the dispersion):
     /// m (dμ/dη)²/V − m (y − μ) d/dη[(dμ/dη)/V]. It may be negative far from the maximum.
-    pub(crate) fn observed_weight(&self, response: f64, eta: f64, mean: f64, weight: f64) -> f64 {
-        let first = self.mean_derivative(eta);
+    /// `first` is dμ/dη at `eta`, already evaluated by the caller.
+    pub(crate) fn observed_weight_given_derivative(
+        &self,
+        response: f64,
+        eta: f64,
+        mean: f64,
+        first: f64,
+        weight: f64,
+    ) -> f64 {
         let second = self.mean_second_derivative(eta);
         let variance = self.variance(mean);
         let variance_slope = match self.distribution {

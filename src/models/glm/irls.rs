@@ -109,7 +109,10 @@ fn means_for(
 }
 
 /// Working weights wᵢ = mᵢ (dμ/dη)² / V(μ) and working responses zᵢ = (ηᵢ − oᵢ) + (yᵢ − μᵢ)/(dμ/dη)
-/// written into the two buffers; returns false when any is non-finite.
+/// written into the two buffers, and dμ/dη of every positively weighted row into `derivatives`
+/// (zero elsewhere) for the score and the observed information at the same point, so that the
+/// inverse link's derivative is evaluated once per row and iteration; returns false when any
+/// is non-finite.
 pub(crate) fn working_quantities(
     kernel: &Kernel,
     problem: &Problem,
@@ -117,6 +120,7 @@ pub(crate) fn working_quantities(
     means: &[f64],
     working_weights: &mut [f64],
     working_response: &mut [f64],
+    derivatives: &mut [f64],
 ) -> bool {
     let mut all_finite = true;
     for i in 0..means.len() {
@@ -124,9 +128,11 @@ pub(crate) fn working_quantities(
         if prior <= 0.0 {
             working_weights[i] = 0.0;
             working_response[i] = 0.0;
+            derivatives[i] = 0.0;
             continue;
         }
         let derivative = kernel.mean_derivative(linear_predictor[i]);
+        derivatives[i] = derivative;
         let variance = kernel.variance(means[i]);
         let weight = prior * derivative * derivative / variance;
         let response =
@@ -177,6 +183,7 @@ pub(crate) fn run_irls(
     let mut candidate_means = vec![0.0; n_rows];
     let mut score_buffer = vec![0.0; n_rows];
     let mut observed_weights = vec![0.0; n_rows];
+    let mut derivatives = vec![0.0; n_rows];
     let mut last_relative_change = f64::INFINITY;
     let mut iterations = 0;
     let mut information = DMatrix::<f64>::zeros(active.len(), active.len());
@@ -189,6 +196,7 @@ pub(crate) fn run_irls(
             &means,
             &mut working_weights,
             &mut working_response,
+            &mut derivatives,
         ) {
             break IrlsStatus::Failed(
                 "working weights or working responses became non-finite".to_string(),
@@ -204,12 +212,12 @@ pub(crate) fn run_irls(
         information = cross;
         let mut score = None;
         if coefficients.is_some() {
-            let current_score = score_at(
+            let current_score = score_from_derivatives(
                 kernel,
                 problem,
                 active,
-                &linear_predictor,
                 &means,
+                &derivatives,
                 &mut score_buffer,
             );
             let standardised = max_standardised_score(&current_score, &information);
@@ -246,10 +254,11 @@ pub(crate) fn run_irls(
                         problem.weights[i] > 0.0 && kernel.is_clamped(linear_predictor[i]);
                     let prior = problem.weights[i];
                     observed_weights[i] = if prior > 0.0 {
-                        kernel.observed_weight(
+                        kernel.observed_weight_given_derivative(
                             problem.response[i],
                             linear_predictor[i],
                             means[i],
+                            derivatives[i],
                             prior,
                         )
                     } else {
@@ -397,6 +406,28 @@ pub(crate) fn score_at(
     transpose_multiply(problem.design, problem.sparse_rows, active, buffer)
 }
 
+/// [`score_at`] from the derivatives dμ/dη that [`working_quantities`] left for the same point:
+/// the same products in the same order, so the same bits, without evaluating the inverse
+/// link's derivative again.
+fn score_from_derivatives(
+    kernel: &Kernel,
+    problem: &Problem,
+    active: &[usize],
+    means: &[f64],
+    derivatives: &[f64],
+    buffer: &mut [f64],
+) -> DVector<f64> {
+    for i in 0..means.len() {
+        let prior = problem.weights[i];
+        buffer[i] = if prior > 0.0 {
+            prior * (problem.response[i] - means[i]) * derivatives[i] / kernel.variance(means[i])
+        } else {
+            0.0
+        };
+    }
+    transpose_multiply(problem.design, problem.sparse_rows, active, buffer)
+}
+
 /// The deviance at `coefficients`, or `None` when a mean leaves the family's range; uses the
 /// two buffers as scratch.
 fn deviance_at(
@@ -471,6 +502,7 @@ pub(crate) fn separation_columns(
     let mut means = outcome.means.clone();
     let mut working_weights = vec![0.0; n_rows];
     let mut working_response = vec![0.0; n_rows];
+    let mut derivatives = vec![0.0; n_rows];
     for _ in 0..DIVERGENCE_STEPS {
         if !working_quantities(
             kernel,
@@ -479,6 +511,7 @@ pub(crate) fn separation_columns(
             &means,
             &mut working_weights,
             &mut working_response,
+            &mut derivatives,
         ) {
             break;
         }
