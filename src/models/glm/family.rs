@@ -15,6 +15,7 @@ use libm::erfc;
 use libm::lgamma as ln_gamma;
 use statrs::function::erf::erfc_inv;
 
+use super::negative_binomial::CountMemo;
 use super::{Family, Link};
 
 /// Smallest probability or mean the inverse links return; R's `binomial()` and `poisson()` use
@@ -307,26 +308,37 @@ pub(crate) fn log_likelihood(
                     value
                 }),
         ),
-        Distribution::Poisson => compensated_sum(response.iter().zip(means).zip(weights).map(
-            |((&y, &mu), &weight)| {
-                let y_log_mu = if y > 0.0 { y * mu.pln() } else { 0.0 };
-                weight * (y_log_mu - mu - ln_gamma(y + 1.0))
-            },
-        )),
-        Distribution::NegativeBinomial { theta } => compensated_sum(
-            response
-                .iter()
-                .zip(means)
-                .zip(weights)
-                .map(|((&y, &mu), &weight)| {
-                    let y_log_mu = if y > 0.0 { y * mu.pln() } else { 0.0 };
-                    weight
-                        * (ln_gamma(theta + y) - ln_gamma(theta) - ln_gamma(y + 1.0)
-                            + theta * theta.pln()
-                            + y_log_mu
-                            - (theta + y) * (theta + mu).pln())
-                }),
-        ),
+        Distribution::Poisson => {
+            let mut log_factorial = CountMemo::new(ln_gamma, 1.0);
+            compensated_sum(
+                response
+                    .iter()
+                    .zip(means)
+                    .zip(weights)
+                    .map(|((&y, &mu), &weight)| {
+                        let y_log_mu = if y > 0.0 { y * mu.pln() } else { 0.0 };
+                        weight * (y_log_mu - mu - log_factorial.at(y))
+                    }),
+            )
+        }
+        Distribution::NegativeBinomial { theta } => {
+            let mut log_factorial = CountMemo::new(ln_gamma, 1.0);
+            let mut log_gamma_shifted = CountMemo::new(ln_gamma, theta);
+            compensated_sum(
+                response
+                    .iter()
+                    .zip(means)
+                    .zip(weights)
+                    .map(|((&y, &mu), &weight)| {
+                        let y_log_mu = if y > 0.0 { y * mu.pln() } else { 0.0 };
+                        weight
+                            * (log_gamma_shifted.at(y) - ln_gamma(theta) - log_factorial.at(y)
+                                + theta * theta.pln()
+                                + y_log_mu
+                                - (theta + y) * (theta + mu).pln())
+                    }),
+            )
+        }
         Distribution::Gamma => {
             let total_weight = compensated_sum(weights.iter().copied());
             let dispersion = deviance / total_weight;

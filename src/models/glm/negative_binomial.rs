@@ -36,14 +36,55 @@ pub(crate) fn trigamma(x: f64) -> f64 {
     value + inverse + 0.5 * inverse_squared + inverse * series
 }
 
+/// `f(shift + y)` for responses `y`, remembered per whole count below [`CountMemo::LIMIT`]: a
+/// count seen again gets the very value computed the first time, so a sum over the rows in
+/// their order is the same bits as evaluating `f` row by row, with `f` (a digamma, trigamma or
+/// log-gamma) evaluated once per distinct count instead of once per row.
+pub(crate) struct CountMemo<F: Fn(f64) -> f64> {
+    function: F,
+    shift: f64,
+    values: Vec<Option<f64>>,
+}
+
+impl<F: Fn(f64) -> f64> CountMemo<F> {
+    const LIMIT: usize = 4096;
+
+    pub(crate) fn new(function: F, shift: f64) -> CountMemo<F> {
+        CountMemo {
+            function,
+            shift,
+            values: Vec::new(),
+        }
+    }
+
+    pub(crate) fn at(&mut self, y: f64) -> f64 {
+        if !(y >= 0.0 && y < Self::LIMIT as f64 && y.fract() == 0.0) {
+            return (self.function)(self.shift + y);
+        }
+        let index = y as usize;
+        if index >= self.values.len() {
+            self.values.resize(index + 1, None);
+        }
+        match self.values[index] {
+            Some(value) => value,
+            None => {
+                let value = (self.function)(self.shift + y);
+                self.values[index] = Some(value);
+                value
+            }
+        }
+    }
+}
+
 /// Score of the NB2 log-likelihood in θ at fixed means.
 fn theta_score(theta: f64, response: &[f64], means: &[f64], weights: &[f64]) -> f64 {
     let digamma_theta = digamma(theta);
+    let mut digamma_at = CountMemo::new(digamma, theta);
     let mut total = 0.0;
     for ((&y, &mu), &w) in response.iter().zip(means).zip(weights) {
         if w > 0.0 {
             total += w
-                * (digamma(theta + y) - digamma_theta + theta.pln() + 1.0
+                * (digamma_at.at(y) - digamma_theta + theta.pln() + 1.0
                     - (theta + mu).pln()
                     - (y + theta) / (mu + theta));
         }
@@ -59,11 +100,12 @@ pub(crate) fn theta_information(
     weights: &[f64],
 ) -> f64 {
     let trigamma_theta = trigamma(theta);
+    let mut trigamma_at = CountMemo::new(trigamma, theta);
     let mut total = 0.0;
     for ((&y, &mu), &w) in response.iter().zip(means).zip(weights) {
         if w > 0.0 {
             total += w
-                * (-trigamma(theta + y) + trigamma_theta - 1.0 / theta + 2.0 / (mu + theta)
+                * (-trigamma_at.at(y) + trigamma_theta - 1.0 / theta + 2.0 / (mu + theta)
                     - (y + theta) / ((mu + theta) * (mu + theta)));
         }
     }
@@ -154,7 +196,30 @@ pub(crate) fn theta_maximum_likelihood(
 
 #[cfg(test)]
 mod tests {
-    use super::trigamma;
+    use super::{CountMemo, trigamma};
+
+    // Common practice for a memo: a remembered value is the value computed directly, to the
+    // bit, for whole counts; other responses are computed directly every time.
+    #[test]
+    fn count_memo_gives_the_directly_computed_bits() {
+        let theta = 1.7;
+        let mut memo = CountMemo::new(trigamma, theta);
+        for y in [0.0, 3.0, 3.0, 17.0, 0.0, 2.5, -1.0, 5000.0, 17.0] {
+            assert_eq!(memo.at(y).to_bits(), trigamma(theta + y).to_bits(), "y = {y}");
+        }
+        let calls = std::cell::Cell::new(0);
+        let mut counted = CountMemo::new(
+            |x: f64| {
+                calls.set(calls.get() + 1);
+                x * 2.0
+            },
+            0.5,
+        );
+        for y in [4.0, 4.0, 4.0, 1.0, 1.0, 0.25, 0.25] {
+            counted.at(y);
+        }
+        assert_eq!(calls.get(), 4, "two whole counts once each, the fraction every time");
+    }
 
     #[test]
     fn trigamma_matches_closed_forms() {
