@@ -625,9 +625,7 @@ impl PivotedQr {
             upper.push(alpha);
             upper_columns.push(upper);
 
-            for later_column in work.iter_mut().skip(column + 1) {
-                apply_reflector(&vector, beta, &mut later_column[step..]);
-            }
+            apply_reflector_to_columns(&vector, beta, &mut work[column + 1..], step);
             kept.push(column);
             work[column][step..].copy_from_slice(&vector);
             reflector_betas.push(beta);
@@ -700,6 +698,36 @@ impl PivotedQr {
     }
 }
 
+/// [`apply_reflector`] to rows `step..` of every column of `targets`. The projections of eight
+/// columns are accumulated in one pass over the rows (eight independent chains the processor
+/// overlaps, and the reflector read once for all of them); each is still summed over the rows
+/// in order from −0.0, as an iterator's sum is, so the bits are those of one column at a time.
+fn apply_reflector_to_columns(vector: &[f64], beta: f64, targets: &mut [Vec<f64>], step: usize) {
+    const GROUP: usize = 8;
+    let length = vector.len();
+    for group in targets.chunks_mut(GROUP) {
+        let mut projections = [-0.0_f64; GROUP];
+        if group.len() == GROUP {
+            let columns: [&[f64]; GROUP] = std::array::from_fn(|k| &group[k][step..step + length]);
+            for (i, &v) in vector.iter().enumerate() {
+                for k in 0..GROUP {
+                    projections[k] += v * columns[k][i];
+                }
+            }
+        } else {
+            for (projection, column) in projections.iter_mut().zip(group.iter()) {
+                *projection = vector.iter().zip(&column[step..]).map(|(v, t)| v * t).sum();
+            }
+        }
+        for (column, projection) in group.iter_mut().zip(projections) {
+            let factor = beta * projection;
+            for (value, v) in column[step..].iter_mut().zip(vector) {
+                *value -= factor * v;
+            }
+        }
+    }
+}
+
 fn apply_reflector(vector: &[f64], beta: f64, target: &mut [f64]) {
     let projection: f64 = vector.iter().zip(target.iter()).map(|(v, t)| v * t).sum();
     let factor = beta * projection;
@@ -742,14 +770,22 @@ fn refined_augmented_solve(
     let mut converged = false;
     let n_observations = b.len();
     for _ in 0..max_refinement_steps {
-        // f = b − r − A x and g = c − Aᵀ r, each in double-double.
+        // f = b − r − A x and g = c − Aᵀ r, each in double-double. A zero entry of A adds an
+        // exact ±0 product with no rounding error, which leaves a double-double sum's value
+        // unchanged, so zero entries are skipped (designs of dummies are mostly zeros) — unless
+        // x or r holds a non-finite value, which 0 · ∞ must carry into the sums.
+        let skip_zeros = x.iter().chain(&r).all(|v| v.is_finite());
         let mut f = vec![0.0; n_observations];
         for row in 0..n_observations {
             let mut accumulator = DoubleDouble::zero();
             accumulator.add(b[row]);
             accumulator.add(-r[row]);
             for (position, &(column, scale)) in kept_columns.columns.iter().enumerate() {
-                let value = kept_columns.data[column * kept_columns.n_rows + row] * scale;
+                let entry = kept_columns.data[column * kept_columns.n_rows + row];
+                if skip_zeros && entry == 0.0 {
+                    continue;
+                }
+                let value = entry * scale;
                 accumulator.add_product(-value, x[position]);
             }
             f[row] = accumulator.value();
@@ -764,6 +800,9 @@ fn refined_augmented_solve(
                 let mut accumulator = DoubleDouble::zero();
                 accumulator.add(c[position]);
                 for row in 0..n_observations {
+                    if skip_zeros && values[row] == 0.0 {
+                        continue;
+                    }
                     accumulator.add_product(-(values[row] * scale), r[row]);
                 }
                 accumulator.value()

@@ -205,7 +205,11 @@ mod tests {
         let theta = 1.7;
         let mut memo = CountMemo::new(trigamma, theta);
         for y in [0.0, 3.0, 3.0, 17.0, 0.0, 2.5, -1.0, 5000.0, 17.0] {
-            assert_eq!(memo.at(y).to_bits(), trigamma(theta + y).to_bits(), "y = {y}");
+            assert_eq!(
+                memo.at(y).to_bits(),
+                trigamma(theta + y).to_bits(),
+                "y = {y}"
+            );
         }
         let calls = std::cell::Cell::new(0);
         let mut counted = CountMemo::new(
@@ -218,7 +222,11 @@ mod tests {
         for y in [4.0, 4.0, 4.0, 1.0, 1.0, 0.25, 0.25] {
             counted.at(y);
         }
-        assert_eq!(calls.get(), 4, "two whole counts once each, the fraction every time");
+        assert_eq!(
+            calls.get(),
+            4,
+            "two whole counts once each, the fraction every time"
+        );
     }
 
     #[test]
