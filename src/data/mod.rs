@@ -19,7 +19,7 @@ mod typing;
 
 pub use csv_table::{Table, read_table};
 pub use dummy::{dummy_allocation, dummy_allocation_name};
-pub use typing::{Column, JoinSummary, StudyData, assemble};
+pub use typing::{Codes, Column, JoinSummary, NumericValues, StudyData, SubjectIds, assemble};
 
 use crate::error::{Error, ErrorKind, Location, Problem};
 

@@ -12,20 +12,132 @@ const PROBLEM_LIMIT: usize = 25;
 /// A typed column, aligned with `StudyData::subject_ids`.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Column {
-    Numeric(Vec<Option<f64>>),
+    Numeric(NumericValues),
     /// Codes index into `levels` (declared order, or sorted when taken from the data).
     Categorical {
         levels: Vec<String>,
-        codes: Vec<Option<usize>>,
+        codes: Codes,
     },
 }
 
 impl Column {
     pub fn is_missing(&self, row: usize) -> bool {
         match self {
-            Column::Numeric(values) => values[row].is_none(),
-            Column::Categorical { codes, .. } => codes[row].is_none(),
+            Column::Numeric(values) => values.get(row).is_none(),
+            Column::Categorical { codes, .. } => codes.get(row).is_none(),
         }
+    }
+}
+
+/// The analysed subjects' keys in file order, held as one string with offsets (not a `String`
+/// per subject).
+#[derive(Debug, Clone, PartialEq)]
+pub struct SubjectIds {
+    text: String,
+    ends: Vec<usize>,
+}
+
+impl SubjectIds {
+    pub fn from_keys<'a>(keys: impl Iterator<Item = &'a str>) -> SubjectIds {
+        let mut ids = SubjectIds {
+            text: String::new(),
+            ends: Vec::new(),
+        };
+        for key in keys {
+            ids.text.push_str(key);
+            ids.ends.push(ids.text.len());
+        }
+        ids
+    }
+
+    pub fn len(&self) -> usize {
+        self.ends.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.ends.is_empty()
+    }
+
+    /// The key of subject `row`.
+    pub fn get(&self, row: usize) -> &str {
+        let start = if row == 0 { 0 } else { self.ends[row - 1] };
+        &self.text[start..self.ends[row]]
+    }
+}
+
+/// A numeric column, 8 bytes a value: a missing value is held as NaN, which no parsed value
+/// can be (the parser refuses `nan`, `inf` and values beyond the range of a double).
+#[derive(Debug, Clone, PartialEq)]
+pub struct NumericValues(Vec<f64>);
+
+impl NumericValues {
+    pub fn from_options(values: impl IntoIterator<Item = Option<f64>>) -> NumericValues {
+        NumericValues(
+            values
+                .into_iter()
+                .map(|value| value.unwrap_or(f64::NAN))
+                .collect(),
+        )
+    }
+
+    pub fn get(&self, row: usize) -> Option<f64> {
+        let value = self.0[row];
+        (!value.is_nan()).then_some(value)
+    }
+
+    pub fn len(&self) -> usize {
+        self.0.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.0.is_empty()
+    }
+
+    pub fn iter(&self) -> impl Iterator<Item = Option<f64>> + '_ {
+        self.0
+            .iter()
+            .map(|&value| (!value.is_nan()).then_some(value))
+    }
+}
+
+/// A categorical column's codes, 4 bytes a value: a missing value is held as `u32::MAX`,
+/// which no code reaches (a factor has at most `MAX_LEVELS` levels).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Codes(Vec<u32>);
+
+impl Codes {
+    const MISSING: u32 = u32::MAX;
+
+    pub fn from_options(codes: impl IntoIterator<Item = Option<usize>>) -> Codes {
+        Codes(
+            codes
+                .into_iter()
+                .map(|code| {
+                    code.and_then(|code| u32::try_from(code).ok())
+                        .filter(|&code| code != Self::MISSING)
+                        .unwrap_or(Self::MISSING)
+                })
+                .collect(),
+        )
+    }
+
+    pub fn get(&self, row: usize) -> Option<usize> {
+        let code = self.0[row];
+        (code != Self::MISSING).then_some(code as usize)
+    }
+
+    pub fn len(&self) -> usize {
+        self.0.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.0.is_empty()
+    }
+
+    pub fn iter(&self) -> impl Iterator<Item = Option<usize>> + '_ {
+        self.0
+            .iter()
+            .map(|&code| (code != Self::MISSING).then_some(code as usize))
     }
 }
 
@@ -44,7 +156,7 @@ pub struct JoinSummary {
 /// The analysis data: one entry per matched subject, in subjects-file order.
 #[derive(Debug, Clone, PartialEq)]
 pub struct StudyData {
-    pub subject_ids: Vec<String>,
+    pub subject_ids: SubjectIds,
     /// Arm index (into the plan's arms) per subject.
     pub arms: Vec<usize>,
     /// One column per plan variable, in the plan's order.
@@ -234,10 +346,11 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
         .zip(&arm_of_subject)
         .filter_map(|((_, row), arm)| arm.map(|arm| (*row, arm)))
         .unzip();
-    let subject_ids: Vec<String> = matched_rows
-        .iter()
-        .map(|row| subjects.cell(*row, subject_key).trim().to_string())
-        .collect();
+    let subject_ids = SubjectIds::from_keys(
+        matched_rows
+            .iter()
+            .map(|row| subjects.cell(*row, subject_key).trim()),
+    );
 
     let mut columns = Vec::with_capacity(plan.variables.len());
     for (variable, column) in plan.variables.iter().zip(&variable_columns) {
@@ -373,57 +486,51 @@ fn type_column(
     let is_missing = |text: &str| missing_codes.contains(&text);
     match kind {
         VariableKind::Numeric | VariableKind::Count => {
-            let values = rows
-                .iter()
-                .map(|&row| {
-                    let text = cell(row);
-                    if is_missing(text) {
-                        return None;
+            let values = NumericValues::from_options(rows.iter().map(|&row| {
+                let text = cell(row);
+                if is_missing(text) {
+                    return None;
+                }
+                match parse_number(text, matches!(kind, VariableKind::Count)) {
+                    Ok(value) => Some(value),
+                    Err(expected) => {
+                        collector.push(
+                            Problem::new(
+                                ErrorKind::DataValue,
+                                format!("expected {expected}; found \"{text}\""),
+                            )
+                            .at(table.cell_location(row, column)),
+                        );
+                        None
                     }
-                    match parse_number(text, matches!(kind, VariableKind::Count)) {
-                        Ok(value) => Some(value),
-                        Err(expected) => {
-                            collector.push(
-                                Problem::new(
-                                    ErrorKind::DataValue,
-                                    format!("expected {expected}; found \"{text}\""),
-                                )
-                                .at(table.cell_location(row, column)),
-                            );
-                            None
-                        }
-                    }
-                })
-                .collect();
+                }
+            }));
             Column::Numeric(values)
         }
         VariableKind::Factor {
             levels: Some(levels),
         }
         | VariableKind::Ordinal { levels } => {
-            let codes = rows
-                .iter()
-                .map(|&row| {
-                    let text = cell(row);
-                    if is_missing(text) {
-                        return None;
-                    }
-                    let code = levels.iter().position(|level| level == text);
-                    if code.is_none() {
-                        collector.push(
-                            Problem::new(
-                                ErrorKind::DataValue,
-                                format!(
-                                    "\"{text}\" is not a declared level (levels: {})",
-                                    levels.join(", ")
-                                ),
-                            )
-                            .at(table.cell_location(row, column)),
-                        );
-                    }
-                    code
-                })
-                .collect();
+            let codes = Codes::from_options(rows.iter().map(|&row| {
+                let text = cell(row);
+                if is_missing(text) {
+                    return None;
+                }
+                let code = levels.iter().position(|level| level == text);
+                if code.is_none() {
+                    collector.push(
+                        Problem::new(
+                            ErrorKind::DataValue,
+                            format!(
+                                "\"{text}\" is not a declared level (levels: {})",
+                                levels.join(", ")
+                            ),
+                        )
+                        .at(table.cell_location(row, column)),
+                    );
+                }
+                code
+            }));
             Column::Categorical {
                 levels: levels.clone(),
                 codes,
@@ -456,20 +563,17 @@ fn type_column(
                 );
                 return Column::Categorical {
                     levels: Vec::new(),
-                    codes: vec![None; rows.len()],
+                    codes: Codes::from_options(vec![None; rows.len()]),
                 };
             }
-            let codes = rows
-                .iter()
-                .map(|&row| {
-                    let text = cell(row);
-                    if is_missing(text) {
-                        None
-                    } else {
-                        distinct.get(text).copied()
-                    }
-                })
-                .collect();
+            let codes = Codes::from_options(rows.iter().map(|&row| {
+                let text = cell(row);
+                if is_missing(text) {
+                    None
+                } else {
+                    distinct.get(text).copied()
+                }
+            }));
             Column::Categorical { levels, codes }
         }
     }
@@ -508,7 +612,28 @@ pub fn parse_number(text: &str, whole: bool) -> Result<f64, &'static str> {
 
 #[cfg(test)]
 mod tests {
-    use super::parse_number;
+    use super::{Codes, NumericValues, SubjectIds, parse_number};
+
+    // Common practice for a compact encoding: what goes in comes out, a missing value included.
+    #[test]
+    fn compact_columns_give_back_what_they_were_given() {
+        let values = [Some(1.5), None, Some(-0.0), Some(f64::MAX), None];
+        let numeric = NumericValues::from_options(values);
+        assert_eq!(numeric.len(), 5);
+        for (row, value) in values.iter().enumerate() {
+            assert_eq!(numeric.get(row).map(f64::to_bits), value.map(f64::to_bits));
+        }
+        assert_eq!(numeric.iter().collect::<Vec<_>>(), values.to_vec());
+        let codes = [Some(0), None, Some(7), Some(4095)];
+        let coded = Codes::from_options(codes);
+        assert_eq!(coded.iter().collect::<Vec<_>>(), codes.to_vec());
+        assert_eq!(coded.get(2), Some(7));
+        let ids = SubjectIds::from_keys(["DERM-001", "", "DERM-1002"].into_iter());
+        assert_eq!(
+            (ids.len(), ids.get(0), ids.get(1), ids.get(2)),
+            (3, "DERM-001", "", "DERM-1002")
+        );
+    }
 
     #[test]
     fn numbers_are_strict() {

@@ -116,7 +116,9 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
     };
     let in_population: Vec<usize> = (0..data.subject_ids.len())
         .filter(|&row| {
-            flag_codes[row].is_some_and(|code| population.values.contains(&flag_levels[code]))
+            flag_codes
+                .get(row)
+                .is_some_and(|code| population.values.contains(&flag_levels[code]))
         })
         .collect();
     let mut in_population_per_arm = vec![0; arms.len()];
@@ -259,7 +261,7 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
         let first = columns.len();
         match &data.columns[covariate] {
             Column::Numeric(values) => {
-                columns.push(analysed.iter().map(|&row| values[row].unwrap_or(0.0)));
+                columns.push(analysed.iter().map(|&row| values.get(row).unwrap_or(0.0)));
                 column_names.push(name.clone());
                 column_terms.push(term_index);
             }
@@ -308,7 +310,7 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
             Column::Numeric(values) => (
                 analysed
                     .iter()
-                    .map(|&row| values[row].unwrap_or(0.0))
+                    .map(|&row| values.get(row).unwrap_or(0.0))
                     .collect(),
                 Vec::new(),
             ),
@@ -316,14 +318,14 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
                 Some(event) => (
                     analysed
                         .iter()
-                        .map(|&row| f64::from(u8::from(codes[row] == Some(event))))
+                        .map(|&row| f64::from(u8::from(codes.get(row) == Some(event))))
                         .collect(),
                     levels.clone(),
                 ),
                 None => (
                     analysed
                         .iter()
-                        .map(|&row| codes[row].unwrap_or(0) as f64)
+                        .map(|&row| codes.get(row).unwrap_or(0) as f64)
                         .collect(),
                     levels.clone(),
                 ),
@@ -337,13 +339,14 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
             };
             let mut offset = Vec::with_capacity(analysed.len());
             for &row in &analysed {
-                let value = values[row].unwrap_or(0.0);
+                let value = values.get(row).unwrap_or(0.0);
                 // Written this way so that NaN is refused too.
                 #[allow(clippy::neg_cmp_op_on_partial_ord)]
                 if !(value > 0.0) {
                     return Err(fail(format!(
                         "subject \"{}\" has exposure {} = {value}; an exposure must be positive",
-                        data.subject_ids[row], plan.variables[variable].name
+                        data.subject_ids.get(row),
+                        plan.variables[variable].name
                     )));
                 }
                 offset.push(libm::log(value));
@@ -380,7 +383,7 @@ fn factor_values(column: &Column, rows: &[usize]) -> Result<FactorValues, Error>
     // Keep only the levels present among the analysed subjects, in level order.
     let mut present = vec![false; levels.len()];
     for &row in rows {
-        if let Some(code) = codes[row] {
+        if let Some(code) = codes.get(row) {
             present[code] = true;
         }
     }
@@ -394,7 +397,7 @@ fn factor_values(column: &Column, rows: &[usize]) -> Result<FactorValues, Error>
     }
     let codes = rows
         .iter()
-        .map(|&row| codes[row].map(|code| remap[code]).unwrap_or(0))
+        .map(|&row| codes.get(row).map(|code| remap[code]).unwrap_or(0))
         .collect();
     Ok(FactorValues {
         levels: kept,
