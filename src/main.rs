@@ -61,7 +61,7 @@ enum Command {
         /// Replace the output folder if it exists.
         #[arg(long)]
         force: bool,
-        /// Fit up to N analyses at once, one thread each (default 1). The outputs are the same
+        /// Fit up to N analyses at once, one thread each. The outputs are the same
         /// bytes for any N; memory grows with N (one design per analysis in flight).
         #[arg(long, value_name = "N", default_value_t = 1, value_parser = clap::value_parser!(u16).range(1..))]
         jobs: u16,
@@ -79,7 +79,7 @@ enum Command {
         /// Run only this analysis (repeatable). A departure from the plan, flagged in the report.
         #[arg(long, value_name = "ANALYSIS")]
         only: Vec<String>,
-        /// Fit up to N analyses at once, one thread each (default 1). The outputs are the same
+        /// Fit up to N analyses at once, one thread each. The outputs are the same
         /// bytes for any N; memory grows with N (one design per analysis in flight).
         #[arg(long, value_name = "N", default_value_t = 1, value_parser = clap::value_parser!(u16).range(1..))]
         jobs: u16,
@@ -91,7 +91,7 @@ enum Command {
         /// The plan file, if it is not in the current folder or beside DIR.
         #[arg(long, value_name = "PLAN")]
         plan: Option<PathBuf>,
-        /// Fit up to N analyses at once, one thread each (default 1). The outputs are the same
+        /// Fit up to N analyses at once, one thread each. The outputs are the same
         /// bytes for any N; memory grows with N (one design per analysis in flight).
         #[arg(long, value_name = "N", default_value_t = 1, value_parser = clap::value_parser!(u16).range(1..))]
         jobs: u16,
