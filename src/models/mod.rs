@@ -5,6 +5,7 @@
 pub mod glm;
 pub mod linear;
 pub mod multinomial;
+mod newton;
 pub mod ordinal;
 pub mod portable;
 

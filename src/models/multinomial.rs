@@ -24,11 +24,11 @@
 
 #[allow(unused_imports)]
 use crate::models::portable::Portable;
-use nalgebra::{DMatrix, DVector};
+use nalgebra::DMatrix;
 
 use super::glm::linalg::{BlockNonZeros, ROW_BLOCK};
 use super::ordinal::{ModelInputError, prepare_common, sweep_for_aliasing};
-use super::{DesignColumns, StopReason, every_column};
+use super::{DesignColumns, StopReason, every_column, newton};
 
 /// Options for the Newton–Raphson fit. Built with [`Default`] and adjusted field by field.
 #[derive(Debug, Clone, PartialEq)]
@@ -219,75 +219,26 @@ pub fn fit_multinomial_logit_on(
         })
     };
 
-    let Some(mut log_likelihood) = problem.evaluate(&parameters, true, &mut workspace) else {
+    let Some(log_likelihood) = problem.evaluate(&parameters, true, &mut workspace) else {
         return Ok(not_estimated(StopReason::NumericalFailure {
             detail: "the log-likelihood is not finite at the starting values".to_string(),
         }));
     };
-    let mut iterations = 0;
-    let mut stop_reason = None;
-    if gradient_converged(&workspace.gradient) {
-        stop_reason = Some(StopReason::Converged { iterations: 0 });
-    }
-    let mut candidate = vec![0.0; n_parameters];
-    while stop_reason.is_none() {
-        if iterations >= options.max_iterations {
-            stop_reason = Some(StopReason::IterationLimit { iterations });
-            break;
-        }
-        iterations += 1;
-        let Some(cholesky) = information_matrix(&workspace.hessian, n_parameters).cholesky() else {
-            stop_reason = Some(StopReason::NumericalFailure {
-                detail: "the observed information is not positive definite".to_string(),
-            });
-            break;
-        };
-        let step = cholesky.solve(&DVector::from_column_slice(&workspace.gradient));
-        let mut step_size = 1.0;
-        let mut accepted = None;
-        for _ in 0..60 {
-            for r in 0..n_parameters {
-                candidate[r] = parameters[r] + step_size * step[r];
-            }
-            // The trial pass also accumulates derivatives: the full step is nearly always
-            // accepted, and then they serve the next iteration without another pass.
-            if candidate.iter().all(|v| v.is_finite())
-                && let Some(candidate_log_likelihood) =
-                    problem.evaluate(&candidate, true, &mut workspace)
-            {
-                // A decrease within the rounding noise of a long sum is not a decrease.
-                let noise = 64.0 * f64::EPSILON * log_likelihood.abs().max(1.0);
-                if candidate_log_likelihood >= log_likelihood - noise {
-                    accepted = Some(candidate_log_likelihood);
-                    break;
-                }
-            }
-            step_size *= 0.5;
-        }
-        let Some(accepted_log_likelihood) = accepted else {
-            // Restore the derivatives at the current iterate, which the trials overwrote.
-            let _ = problem.evaluate(&parameters, true, &mut workspace);
-            stop_reason = Some(StopReason::NumericalFailure {
-                detail: "step-halving found no step that keeps the log-likelihood from decreasing"
-                    .to_string(),
-            });
-            break;
-        };
-        parameters.copy_from_slice(&candidate);
-        let previous = log_likelihood;
-        log_likelihood = accepted_log_likelihood;
-        let relative_change = (log_likelihood - previous).abs() / (log_likelihood.abs() + 1e-3);
-        if gradient_converged(&workspace.gradient)
-            && relative_change <= options.log_likelihood_tolerance
-        {
-            stop_reason = Some(StopReason::Converged { iterations });
-        }
-    }
-    let mut stop_reason = stop_reason.unwrap_or(StopReason::IterationLimit { iterations });
-    let covariance = information_matrix(&workspace.hessian, n_parameters)
-        .cholesky()
-        .map(|cholesky| cholesky.inverse())
-        .filter(|inverse| inverse.iter().all(|v| v.is_finite()));
+    let settings = newton::Settings {
+        max_iterations: options.max_iterations,
+        log_likelihood_tolerance: options.log_likelihood_tolerance,
+        gradient_converged: &gradient_converged,
+        halving_failure: "step-halving found no step that keeps the log-likelihood from decreasing",
+    };
+    let mut pass = Pass {
+        problem: &problem,
+        workspace: &mut workspace,
+    };
+    let run = newton::maximise(&mut pass, parameters, log_likelihood, &settings);
+    let covariance = newton::inverse_information(&workspace.hessian, n_parameters);
+    let (parameters, log_likelihood, iterations) =
+        (run.parameters, run.log_likelihood, run.iterations);
+    let mut stop_reason = run.stop_reason;
 
     // Separation: a coefficient whose effect across its column's range is implausibly large
     // (more than 3 on the log-odds scale) and whose standard error is over ten times its size
@@ -360,6 +311,30 @@ pub fn multinomial_probabilities(
         }
     }
     Ok(probabilities)
+}
+
+/// One pass of the multinomial likelihood over the rows, for the shared Newton driver.
+struct Pass<'p, 'a> {
+    problem: &'p Problem<'a>,
+    workspace: &'p mut Workspace,
+}
+
+impl newton::Likelihood for Pass<'_, '_> {
+    fn admissible(&self, parameters: &[f64]) -> bool {
+        parameters.iter().all(|v| v.is_finite())
+    }
+
+    fn evaluate(&mut self, parameters: &[f64]) -> Option<f64> {
+        self.problem.evaluate(parameters, true, self.workspace)
+    }
+
+    fn gradient(&self) -> &[f64] {
+        &self.workspace.gradient
+    }
+
+    fn hessian_upper(&self) -> &[f64] {
+        &self.workspace.hessian
+    }
 }
 
 struct Problem<'a> {
@@ -487,14 +462,6 @@ impl Problem<'_> {
     }
 }
 
-/// The information matrix (negative Hessian) from the accumulated upper triangle.
-fn information_matrix(upper: &[f64], n: usize) -> DMatrix<f64> {
-    DMatrix::from_fn(n, n, |r, s| {
-        let (first, second) = if r <= s { (r, s) } else { (s, r) };
-        -upper[first * n + second]
-    })
-}
-
 #[cfg(test)]
 mod tests {
     //! The analytic gradient and Hessian against central finite differences of the
@@ -532,7 +499,7 @@ mod tests {
             .evaluate(&point, true, &mut workspace)
             .expect("finite");
         let gradient = workspace.gradient.clone();
-        let information = information_matrix(&workspace.hessian, n_parameters);
+        let information = newton::information_matrix(&workspace.hessian, n_parameters);
         let h = 1e-5;
         for r in 0..n_parameters {
             let mut plus = point.clone();

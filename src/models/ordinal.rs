@@ -35,7 +35,7 @@ use nalgebra::{DMatrix, DVector};
 use statrs::distribution::{ContinuousCDF, Normal};
 
 use super::glm::linalg::{BlockNonZeros, ROW_BLOCK};
-use super::{DesignColumns, StopReason, every_column};
+use super::{DesignColumns, StopReason, every_column, newton};
 
 /// The link function `g` of a cumulative link model.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -1065,6 +1065,33 @@ struct Workspace {
     non_zeros: BlockNonZeros,
 }
 
+/// One pass of the cumulative link likelihood over the rows, for the shared Newton driver.
+struct Pass<'p, 'a> {
+    problem: &'p Problem<'a>,
+    workspace: &'p mut Workspace,
+}
+
+impl newton::Likelihood for Pass<'_, '_> {
+    fn admissible(&self, parameters: &[f64]) -> bool {
+        self.problem.admissible(parameters)
+    }
+
+    fn evaluate(&mut self, parameters: &[f64]) -> Option<f64> {
+        match self.problem.evaluate(parameters, true, self.workspace) {
+            Evaluation::Feasible { log_likelihood } => Some(log_likelihood),
+            Evaluation::Infeasible => None,
+        }
+    }
+
+    fn gradient(&self) -> &[f64] {
+        &self.workspace.gradient
+    }
+
+    fn hessian_upper(&self) -> &[f64] {
+        &self.workspace.hessian
+    }
+}
+
 enum Evaluation {
     /// Some analysed row has a non-positive (or non-finite) probability for its category.
     Infeasible,
@@ -1415,7 +1442,7 @@ fn fit_engine(
             detail: "starting cut-points are not strictly ordered".to_string(),
         }));
     }
-    let mut log_likelihood = match problem.evaluate(&parameters, true, &mut workspace) {
+    let log_likelihood = match problem.evaluate(&parameters, true, &mut workspace) {
         Evaluation::Feasible { log_likelihood } => log_likelihood,
         Evaluation::Infeasible => {
             return Ok(not_estimated(StopReason::NumericalFailure {
@@ -1424,77 +1451,22 @@ fn fit_engine(
         }
     };
 
-    let mut iterations = 0;
-    let mut stop_reason = None;
-    if gradient_converged(&workspace.gradient) {
-        stop_reason = Some(StopReason::Converged { iterations: 0 });
-    }
-    let mut candidate = vec![0.0; n_parameters];
-    while stop_reason.is_none() {
-        if iterations >= options.max_iterations {
-            stop_reason = Some(StopReason::IterationLimit { iterations });
-            break;
-        }
-        iterations += 1;
-        let information = negative_hessian(&workspace.hessian, n_parameters);
-        let step = match information.cholesky() {
-            Some(cholesky) => cholesky.solve(&DVector::from_column_slice(&workspace.gradient)),
-            None => {
-                stop_reason = Some(StopReason::NumericalFailure {
-                    detail: "the observed information is not positive definite".to_string(),
-                });
-                break;
-            }
-        };
-        let mut step_size = 1.0;
-        let mut accepted = None;
-        for _ in 0..60 {
-            for r in 0..n_parameters {
-                candidate[r] = parameters[r] + step_size * step[r];
-            }
-            // The trial pass also accumulates derivatives: the full step is nearly always
-            // accepted, and then they serve the next iteration without another pass.
-            if problem.admissible(&candidate)
-                && let Evaluation::Feasible {
-                    log_likelihood: candidate_log_likelihood,
-                } = problem.evaluate(&candidate, true, &mut workspace)
-            {
-                // Rounding in a sum over many rows can make an exact optimum look a hair worse;
-                // a decrease within that noise is not a decrease.
-                let noise = 64.0 * f64::EPSILON * log_likelihood.abs().max(1.0);
-                if candidate_log_likelihood >= log_likelihood - noise {
-                    accepted = Some(candidate_log_likelihood);
-                    break;
-                }
-            }
-            step_size *= 0.5;
-        }
-        let Some(accepted_log_likelihood) = accepted else {
-            // Restore the derivatives at the current iterate, which the trials overwrote.
-            let _ = problem.evaluate(&parameters, true, &mut workspace);
-            stop_reason = Some(StopReason::NumericalFailure {
-                detail: "step-halving found no step that keeps the cut-points ordered and the \
-                         log-likelihood from decreasing"
-                    .to_string(),
-            });
-            break;
-        };
-        parameters.copy_from_slice(&candidate);
-        let previous = log_likelihood;
-        log_likelihood = accepted_log_likelihood;
-        let relative_change = (log_likelihood - previous).abs() / (log_likelihood.abs() + 1e-3);
-        if gradient_converged(&workspace.gradient)
-            && relative_change <= options.log_likelihood_tolerance
-        {
-            stop_reason = Some(StopReason::Converged { iterations });
-        }
-    }
-    let mut stop_reason = stop_reason.unwrap_or(StopReason::IterationLimit { iterations });
-
-    let covariance = negative_hessian(&workspace.hessian, n_parameters)
-        .cholesky()
-        .map(|cholesky| cholesky.inverse())
-        .filter(|inverse| inverse.iter().all(|v| v.is_finite()));
+    let settings = newton::Settings {
+        max_iterations: options.max_iterations,
+        log_likelihood_tolerance: options.log_likelihood_tolerance,
+        gradient_converged: &gradient_converged,
+        halving_failure: "step-halving found no step that keeps the cut-points ordered and the \
+                          log-likelihood from decreasing",
+    };
+    let mut pass = Pass {
+        problem: &problem,
+        workspace: &mut workspace,
+    };
+    let run = newton::maximise(&mut pass, parameters, log_likelihood, &settings);
+    let covariance = newton::inverse_information(&workspace.hessian, n_parameters);
+    let (parameters, log_likelihood, iterations) =
+        (run.parameters, run.log_likelihood, run.iterations);
+    let mut stop_reason = run.stop_reason;
 
     // Separation: a coefficient whose effect across its column's range is implausibly large and
     // whose standard error dwarfs it (or whose information vanished) is diverging.
@@ -1553,13 +1525,6 @@ fn fit_engine(
 }
 
 /// Builds the full negative Hessian from the accumulated upper triangle.
-fn negative_hessian(upper: &[f64], n: usize) -> DMatrix<f64> {
-    DMatrix::from_fn(n, n, |r, s| {
-        let (first, second) = if r <= s { (r, s) } else { (s, r) };
-        -upper[first * n + second]
-    })
-}
-
 // ---------------------------------------------------------------------------------------------
 // Binary logit by Newton–Raphson (which is IRLS for the canonical link), private to the Brant
 // check so that this module does not depend on the general GLM engine.
@@ -1818,7 +1783,7 @@ mod tests {
             Evaluation::Feasible { .. }
         ));
         let gradient = workspace.gradient.clone();
-        let hessian = negative_hessian(&workspace.hessian, n_parameters);
+        let hessian = newton::information_matrix(&workspace.hessian, n_parameters);
         let h = 1e-5;
         for r in 0..n_parameters {
             let mut plus = point.clone();
