@@ -346,7 +346,7 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
         if !options.only.is_empty() && !options.only.contains(&analysis.id) {
             return Ok((not_run(plan, analysis), own));
         }
-        let design = design::build(plan, analysis, &inputs.data)?;
+        let mut design = design::build(plan, analysis, &inputs.data)?;
         if let Some(limit) = analysis.max_excluded {
             let in_population: usize = design.in_population.iter().sum();
             let excluded: usize = design
@@ -367,7 +367,7 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
                 });
             }
         }
-        let result = fit_analysis(plan, analysis, &design, &mut own);
+        let result = fit_analysis(plan, analysis, &mut design, &mut own);
         Ok::<_, Error>((result, own))
     })
     .ok_or_else(|| Error::internal("an analysis thread stopped unexpectedly"))?;
@@ -564,7 +564,7 @@ fn subject_flow(plan: &Plan, data: &StudyData) -> SubjectFlow {
 fn fit_analysis(
     plan: &Plan,
     analysis: &Analysis,
-    design: &Design,
+    design: &mut Design,
     deviations: &mut Vec<Deviation>,
 ) -> AnalysisResult {
     let arms = &plan.data.treatment.arms;

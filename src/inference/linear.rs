@@ -8,21 +8,25 @@ use super::{
     contrast_vector, wald_estimate,
 };
 use crate::design::Design;
-use crate::models::linear::{LeastSquaresFit, LeastSquaresOptions, fit_least_squares};
+use crate::models::linear::{
+    LeastSquaresFit, LeastSquaresOptions, fit_least_squares, fit_least_squares_in_place,
+};
 use crate::plan::Contrast;
 use nalgebra::DMatrix;
 
-/// Fit the planned linear model to `design` and infer from it.
+/// Fit the planned linear model to `design` and infer from it. The design's matrix serves as
+/// the factorization's workspace and is put back exactly before the fit returns (no n × p copy).
 pub fn analyse(
-    design: &Design,
+    design: &mut Design,
     analysis: &crate::plan::Analysis,
 ) -> Result<AnalysisInference, String> {
-    let fit = fit_least_squares(
-        &design.matrix,
+    let fit = fit_least_squares_in_place(
+        &mut design.matrix,
         &design.response,
         &LeastSquaresOptions::default(),
     )
     .map_err(|error| error.to_string())?;
+    let design = &*design;
     let mut inference = infer(design, &fit, &analysis.contrasts, analysis.confidence_level)?;
     if analysis
         .checks

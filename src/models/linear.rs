@@ -64,6 +64,7 @@
 //! from common software. Householder QR is backward stable without pivoting,
 //! so accuracy is not lost by this choice.
 
+use crate::models::glm::linalg::SparseRows;
 #[allow(unused_imports)]
 use crate::models::portable::Portable;
 use nalgebra::DMatrix;
@@ -322,12 +323,12 @@ pub fn least_squares_residual_sum(
     fit(design, response, options, false).map(|fit| fit.residual_sum_of_squares)
 }
 
-fn fit(
+/// The checks every entry point makes before any work.
+fn validate(
     design: &DMatrix<f64>,
     response: &[f64],
     options: &LeastSquaresOptions,
-    with_covariance: bool,
-) -> Result<LeastSquaresFit, LeastSquaresError> {
+) -> Result<(), LeastSquaresError> {
     check_options(options)?;
     let (n_observations, n_columns) = design.shape();
     if n_observations == 0 || n_columns == 0 {
@@ -343,18 +344,140 @@ fn fit(
         });
     }
     for column in 0..n_columns {
-        for row in 0..n_observations {
-            if !design[(row, column)].is_finite() {
-                return Err(LeastSquaresError::NonFiniteDesign { row, column });
-            }
+        if let Some(row) = design
+            .column(column)
+            .iter()
+            .position(|value| !value.is_finite())
+        {
+            return Err(LeastSquaresError::NonFiniteDesign { row, column });
         }
     }
     if let Some(row) = response.iter().position(|value| !value.is_finite()) {
         return Err(LeastSquaresError::NonFiniteResponse { row });
     }
+    Ok(())
+}
 
-    let (scaled_columns, column_scales) = equilibrate(design);
-    let factorization = PivotedQr::new(scaled_columns, options.rank_tolerance);
+fn fit(
+    design: &DMatrix<f64>,
+    response: &[f64],
+    options: &LeastSquaresOptions,
+    with_covariance: bool,
+) -> Result<LeastSquaresFit, LeastSquaresError> {
+    validate(design, response, options)?;
+    let (n_observations, n_columns) = design.shape();
+    let (storage, column_scales) = equilibrate(design);
+    let original = Original::Dense(design.as_slice());
+    let (outcome, _) = solve(
+        storage,
+        n_observations,
+        n_columns,
+        &column_scales,
+        original,
+        response,
+        options,
+        with_covariance,
+    );
+    outcome
+}
+
+/// [`fit_least_squares`] with the design's own storage as the factorization's workspace, so
+/// that no n × p copy is made: the design is read for the refinement from its non-zero
+/// entries, stored row by row beforehand, and is put back exactly before this returns (its
+/// values, zero signs included). The result is the same bits as [`fit_least_squares`]'s. A
+/// design that is not mostly zeros is fitted through the copy instead.
+pub fn fit_least_squares_in_place(
+    design: &mut DMatrix<f64>,
+    response: &[f64],
+    options: &LeastSquaresOptions,
+) -> Result<LeastSquaresFit, LeastSquaresError> {
+    validate(design, response, options)?;
+    let (n_observations, n_columns) = design.shape();
+    let every: Vec<usize> = (0..n_columns).collect();
+    let Some(rows) = SparseRows::of(design, &every) else {
+        return fit(design, response, options, true);
+    };
+    let negative_zeros: Vec<usize> = design
+        .as_slice()
+        .iter()
+        .enumerate()
+        .filter(|(_, value)| **value == 0.0 && value.is_sign_negative())
+        .map(|(index, _)| index)
+        .collect();
+    let taken = std::mem::replace(design, DMatrix::zeros(0, 0));
+    let mut storage: Vec<f64> = taken.data.into();
+    let column_scales = equilibrate_storage(&mut storage, n_observations, n_columns);
+    let (outcome, mut storage) = solve(
+        storage,
+        n_observations,
+        n_columns,
+        &column_scales,
+        Original::Sparse(&rows),
+        response,
+        options,
+        true,
+    );
+    storage.iter_mut().for_each(|value| *value = 0.0);
+    for row in 0..n_observations {
+        let (columns, values) = rows.entries(row);
+        for (&column, &value) in columns.iter().zip(values) {
+            storage[column as usize * n_observations + row] = value;
+        }
+    }
+    for index in negative_zeros {
+        storage[index] = -0.0;
+    }
+    *design = DMatrix::from_vec(n_observations, n_columns, storage);
+    outcome
+}
+
+/// The design as the refinement and the fitted values read it: its column-major values, or
+/// its non-zero entries row by row while its storage serves as the factorization's workspace.
+#[derive(Clone, Copy)]
+enum Original<'a> {
+    Dense(&'a [f64]),
+    Sparse(&'a SparseRows),
+}
+
+/// Everything after equilibration: factorization, refined coefficients, covariance, fitted
+/// values. Returns the outcome and the workspace (the equilibrated storage, now holding the
+/// Householder vectors).
+#[allow(clippy::too_many_arguments)]
+fn solve(
+    storage: Vec<f64>,
+    n_observations: usize,
+    n_columns: usize,
+    column_scales: &[f64],
+    original: Original<'_>,
+    response: &[f64],
+    options: &LeastSquaresOptions,
+    with_covariance: bool,
+) -> (Result<LeastSquaresFit, LeastSquaresError>, Vec<f64>) {
+    let factorization = PivotedQr::new(storage, n_observations, n_columns, options.rank_tolerance);
+    let outcome = solve_factored(
+        &factorization,
+        n_observations,
+        n_columns,
+        column_scales,
+        original,
+        response,
+        options,
+        with_covariance,
+    );
+    (outcome, factorization.work)
+}
+
+#[allow(clippy::too_many_arguments)]
+fn solve_factored(
+    factorization: &PivotedQr,
+    n_observations: usize,
+    n_columns: usize,
+    column_scales: &[f64],
+    original: Original<'_>,
+    response: &[f64],
+    options: &LeastSquaresOptions,
+    with_covariance: bool,
+) -> Result<LeastSquaresFit, LeastSquaresError> {
     let rank = factorization.kept.len();
     if rank == 0 {
         return Err(LeastSquaresError::NoEstimableColumns { n_columns });
@@ -365,19 +488,25 @@ fn fit(
             rank,
         });
     }
+    let mut position_of = vec![usize::MAX; n_columns];
+    for (position, &column) in factorization.kept.iter().enumerate() {
+        position_of[column] = position;
+    }
     let kept_columns = KeptColumns {
-        data: design.as_slice(),
+        original,
         n_rows: n_observations,
+        n_columns,
         columns: factorization
             .kept
             .iter()
             .map(|&column| (column, column_scales[column]))
             .collect(),
+        position_of,
     };
 
     // Coefficients of the scaled, reduced problem: b = y, c = 0.
     let solution = refined_augmented_solve(
-        &factorization,
+        factorization,
         &kept_columns,
         response,
         &vec![0.0; rank],
@@ -395,7 +524,7 @@ fn fit(
     // that bound is no longer far below the digits a report shows, and each
     // column is refined instead: b = 0, c = −e_t.
     let scaled_inverse = if with_covariance {
-        scaled_covariance(&factorization, &kept_columns, n_observations, options)
+        scaled_covariance(factorization, &kept_columns, n_observations, options)
     } else {
         DMatrix::<f64>::zeros(rank, rank)
     };
@@ -417,11 +546,28 @@ fn fit(
     let mut fitted = vec![0.0; n_observations];
     let mut residuals = vec![0.0; n_observations];
     let mut residual_squares = DoubleDouble::zero();
+    // A zero entry adds an exact zero product, which changes no double-double sum, so the
+    // stored non-zeros suffice while every coefficient is finite.
+    let coefficients_finite = coefficients.iter().flatten().all(|value| value.is_finite());
+    let mut row_values = vec![0.0; n_columns];
     for row in 0..n_observations {
         let mut prediction = DoubleDouble::zero();
-        for (column, coefficient) in coefficients.iter().enumerate() {
-            if let Some(coefficient) = coefficient {
-                prediction.add_product(design[(row, column)], *coefficient);
+        match original {
+            Original::Sparse(rows) if coefficients_finite => {
+                let (columns, values) = rows.entries(row);
+                for (&column, &value) in columns.iter().zip(values) {
+                    if let Some(coefficient) = coefficients[column as usize] {
+                        prediction.add_product(value, coefficient);
+                    }
+                }
+            }
+            _ => {
+                kept_columns.row_into(row, &mut row_values);
+                for (column, coefficient) in coefficients.iter().enumerate() {
+                    if let Some(coefficient) = coefficient {
+                        prediction.add_product(row_values[column], *coefficient);
+                    }
+                }
             }
         }
         fitted[row] = prediction.value();
@@ -535,13 +681,20 @@ fn check_options(options: &LeastSquaresOptions) -> Result<(), LeastSquaresError>
 /// which a scaled-problem coefficient must be multiplied to give the original
 /// one (which is the same factor that was applied to the column). A zero
 /// column keeps factor 1.
-fn equilibrate(design: &DMatrix<f64>) -> (Vec<Vec<f64>>, Vec<f64>) {
+fn equilibrate(design: &DMatrix<f64>) -> (Vec<f64>, Vec<f64>) {
     let (n_observations, n_columns) = design.shape();
-    let mut scaled_columns = Vec::with_capacity(n_columns);
+    let mut storage = design.as_slice().to_vec();
+    let column_scales = equilibrate_storage(&mut storage, n_observations, n_columns);
+    (storage, column_scales)
+}
+
+/// [`equilibrate`] of a column-major `n_observations × n_columns` array, in place.
+fn equilibrate_storage(storage: &mut [f64], n_observations: usize, n_columns: usize) -> Vec<f64> {
     let mut column_scales = Vec::with_capacity(n_columns);
-    for column in 0..n_columns {
-        let largest = (0..n_observations)
-            .map(|row| design[(row, column)].abs())
+    for column in storage.chunks_mut(n_observations.max(1)).take(n_columns) {
+        let largest = column
+            .iter()
+            .map(|value| value.abs())
             .fold(0.0_f64, f64::max);
         let scale = if largest > 0.0 {
             // Clamping keeps 2^exponent a normal number, so the scaling stays exact
@@ -551,14 +704,12 @@ fn equilibrate(design: &DMatrix<f64>) -> (Vec<Vec<f64>>, Vec<f64>) {
         } else {
             1.0
         };
-        scaled_columns.push(
-            (0..n_observations)
-                .map(|row| design[(row, column)] * scale)
-                .collect(),
-        );
+        for value in column.iter_mut() {
+            *value *= scale;
+        }
         column_scales.push(scale);
     }
-    (scaled_columns, column_scales)
+    column_scales
 }
 
 /// Euclidean norm without overflow for entries of moderate size (the columns
@@ -577,38 +728,44 @@ struct PivotedQr {
     aliased: Vec<usize>,
     /// Upper-triangular factor, `rank × rank`, row-major by `[row][column]`.
     triangular: Vec<Vec<f64>>,
-    /// The reduced columns: for the accepted column in pivot position `t`, rows
-    /// `t..n` hold the Householder vector `v_t`; aliased columns are emptied.
-    work: Vec<Vec<f64>>,
+    /// The reduced columns, column-major `n × p`: for the accepted column in pivot position
+    /// `t`, rows `t..n` hold the Householder vector `v_t`; aliased columns are left unused.
+    work: Vec<f64>,
     reflector_betas: Vec<f64>,
 }
 
 impl PivotedQr {
-    fn new(scaled_columns: Vec<Vec<f64>>, rank_tolerance: f64) -> PivotedQr {
-        let n_observations = scaled_columns.first().map_or(0, Vec::len);
-        let mut work: Vec<Vec<f64>> = scaled_columns;
+    fn new(
+        storage: Vec<f64>,
+        n_observations: usize,
+        n_columns: usize,
+        rank_tolerance: f64,
+    ) -> PivotedQr {
+        let mut work = storage;
+        let n = n_observations;
         let mut kept = Vec::new();
         let mut aliased = Vec::new();
         let mut upper_columns: Vec<Vec<f64>> = Vec::new();
         let mut reflector_betas = Vec::new();
 
-        for column in 0..work.len() {
+        for column in 0..n_columns {
             let step = kept.len();
-            let own_norm = euclidean_norm(&work[column]);
+            let (done, rest) = work.split_at_mut((column + 1) * n);
+            let current = &mut done[column * n..];
+            let own_norm = euclidean_norm(current);
             // Reflections are orthogonal, so the norm of rows step..n of the
             // transformed column is the column's distance to the span of the
             // columns already accepted.
             let remaining_norm = if step < n_observations {
-                euclidean_norm(&work[column][step..])
+                euclidean_norm(&current[step..])
             } else {
                 0.0
             };
             if own_norm == 0.0 || remaining_norm <= rank_tolerance * own_norm {
                 aliased.push(column);
-                work[column] = Vec::new();
                 continue;
             }
-            let pivot_part = &work[column][step..];
+            let pivot_part = &current[step..];
             let leading = pivot_part[0];
             // The sign choice avoids cancellation in v_0 = x_0 − α.
             let alpha = if leading >= 0.0 {
@@ -621,13 +778,14 @@ impl PivotedQr {
             let vector_norm_squared: f64 = vector.iter().map(|value| value * value).sum();
             let beta = 2.0 / vector_norm_squared;
 
-            let mut upper = work[column][..step].to_vec();
+            let mut upper = current[..step].to_vec();
             upper.push(alpha);
             upper_columns.push(upper);
 
-            apply_reflector_to_columns(&vector, beta, &mut work[column + 1..], step);
+            let later = rest.len() / n.max(1);
+            apply_reflector_to_columns(&vector, beta, &mut rest[..later * n], n, step);
             kept.push(column);
-            work[column][step..].copy_from_slice(&vector);
+            current[step..].copy_from_slice(&vector);
             reflector_betas.push(beta);
         }
 
@@ -650,7 +808,8 @@ impl PivotedQr {
 
     /// Householder vector of pivot position `step` (rows `step..n`).
     fn reflector(&self, step: usize) -> &[f64] {
-        &self.work[self.kept[step]][step..]
+        let start = self.kept[step] * self.n_observations;
+        &self.work[start + step..start + self.n_observations]
     }
 
     /// Solves `[I A; Aᵀ 0] [r; x] = [f; g]` for the accepted columns `A`,
@@ -702,24 +861,36 @@ impl PivotedQr {
 /// columns are accumulated in one pass over the rows (eight independent chains the processor
 /// overlaps, and the reflector read once for all of them); each is still summed over the rows
 /// in order from −0.0, as an iterator's sum is, so the bits are those of one column at a time.
-fn apply_reflector_to_columns(vector: &[f64], beta: f64, targets: &mut [Vec<f64>], step: usize) {
+fn apply_reflector_to_columns(
+    vector: &[f64],
+    beta: f64,
+    targets: &mut [f64],
+    n_rows: usize,
+    step: usize,
+) {
     const GROUP: usize = 8;
     let length = vector.len();
-    for group in targets.chunks_mut(GROUP) {
+    if n_rows == 0 {
+        return;
+    }
+    for group in targets.chunks_mut(GROUP * n_rows) {
+        let members = group.len() / n_rows;
         let mut projections = [-0.0_f64; GROUP];
-        if group.len() == GROUP {
-            let columns: [&[f64]; GROUP] = std::array::from_fn(|k| &group[k][step..step + length]);
+        if members == GROUP {
+            let columns: [&[f64]; GROUP] =
+                std::array::from_fn(|k| &group[k * n_rows + step..k * n_rows + step + length]);
             for (i, &v) in vector.iter().enumerate() {
                 for k in 0..GROUP {
                     projections[k] += v * columns[k][i];
                 }
             }
         } else {
-            for (projection, column) in projections.iter_mut().zip(group.iter()) {
-                *projection = vector.iter().zip(&column[step..]).map(|(v, t)| v * t).sum();
+            for (k, projection) in projections.iter_mut().enumerate().take(members) {
+                let column = &group[k * n_rows + step..(k + 1) * n_rows];
+                *projection = vector.iter().zip(column).map(|(v, t)| v * t).sum();
             }
         }
-        for (column, projection) in group.iter_mut().zip(projections) {
+        for (column, projection) in group.chunks_mut(n_rows).zip(projections) {
             let factor = beta * projection;
             for (value, v) in column[step..].iter_mut().zip(vector) {
                 *value -= factor * v;
@@ -736,14 +907,37 @@ fn apply_reflector(vector: &[f64], beta: f64, target: &mut [f64]) {
     }
 }
 
-/// The accepted columns of the equilibrated design, read from the caller's
-/// column-major design and scaled on the fly (a power of two, so exactly the
-/// values the factorization started from) instead of being kept as a copy.
+/// The accepted columns of the equilibrated design, read from the caller's design (its
+/// column-major values, or its stored non-zero entries) and scaled on the fly (a power of two,
+/// so exactly the values the factorization started from) instead of being kept as a copy.
 struct KeptColumns<'a> {
-    data: &'a [f64],
+    original: Original<'a>,
     n_rows: usize,
+    n_columns: usize,
     /// (design column, its power-of-two scale), in pivot order.
     columns: Vec<(usize, f64)>,
+    /// Per design column, its pivot position; `usize::MAX` for an aliased column.
+    position_of: Vec<usize>,
+}
+
+impl KeptColumns<'_> {
+    /// Every design entry of `row`, zeros included, into `values` (one per design column).
+    fn row_into(&self, row: usize, values: &mut [f64]) {
+        match self.original {
+            Original::Dense(data) => {
+                for (column, value) in values.iter_mut().enumerate().take(self.n_columns) {
+                    *value = data[column * self.n_rows + row];
+                }
+            }
+            Original::Sparse(rows) => {
+                values.iter_mut().for_each(|value| *value = 0.0);
+                let (columns, entries) = rows.entries(row);
+                for (&column, &entry) in columns.iter().zip(entries) {
+                    values[column as usize] = entry;
+                }
+            }
+        }
+    }
 }
 
 struct AugmentedSolution {
@@ -768,46 +962,18 @@ fn refined_augmented_solve(
     let mut previous_correction = max_abs(&x);
     let mut refinement_steps = 0;
     let mut converged = false;
-    let n_observations = b.len();
     for _ in 0..max_refinement_steps {
         // f = b − r − A x and g = c − Aᵀ r, each in double-double. A zero entry of A adds an
         // exact ±0 product with no rounding error, which leaves a double-double sum's value
         // unchanged, so zero entries are skipped (designs of dummies are mostly zeros) — unless
         // x or r holds a non-finite value, which 0 · ∞ must carry into the sums.
         let skip_zeros = x.iter().chain(&r).all(|v| v.is_finite());
-        let mut f = vec![0.0; n_observations];
-        for row in 0..n_observations {
-            let mut accumulator = DoubleDouble::zero();
-            accumulator.add(b[row]);
-            accumulator.add(-r[row]);
-            for (position, &(column, scale)) in kept_columns.columns.iter().enumerate() {
-                let entry = kept_columns.data[column * kept_columns.n_rows + row];
-                if skip_zeros && entry == 0.0 {
-                    continue;
-                }
-                let value = entry * scale;
-                accumulator.add_product(-value, x[position]);
+        let (f, g) = match kept_columns.original {
+            Original::Sparse(rows) if skip_zeros => {
+                sparse_residuals(rows, kept_columns, b, c, &r, &x)
             }
-            f[row] = accumulator.value();
-        }
-        let g: Vec<f64> = kept_columns
-            .columns
-            .iter()
-            .enumerate()
-            .map(|(position, &(column, scale))| {
-                let values = &kept_columns.data
-                    [column * kept_columns.n_rows..(column + 1) * kept_columns.n_rows];
-                let mut accumulator = DoubleDouble::zero();
-                accumulator.add(c[position]);
-                for row in 0..n_observations {
-                    if skip_zeros && values[row] == 0.0 {
-                        continue;
-                    }
-                    accumulator.add_product(-(values[row] * scale), r[row]);
-                }
-                accumulator.value()
-            })
-            .collect();
+            _ => dense_residuals(kept_columns, b, c, &r, &x, skip_zeros),
+        };
         let (r_correction, x_correction) = factorization.solve_augmented(&f, &g);
         let correction = max_abs(&x_correction);
         if correction == 0.0 {
@@ -837,6 +1003,134 @@ fn refined_augmented_solve(
         refinement_steps,
         converged,
     }
+}
+
+/// The refinement's residuals f = b − r − A x and g = c − Aᵀ r in double-double, reading
+/// every entry of A (zeros are skipped when `skip_zeros`).
+fn dense_residuals(
+    kept_columns: &KeptColumns,
+    b: &[f64],
+    c: &[f64],
+    r: &[f64],
+    x: &[f64],
+    skip_zeros: bool,
+) -> (Vec<f64>, Vec<f64>) {
+    let n_observations = b.len();
+    let Original::Dense(data) = kept_columns.original else {
+        return scattered_residuals(kept_columns, b, c, r, x, skip_zeros);
+    };
+    let mut f = vec![0.0; n_observations];
+    for row in 0..n_observations {
+        let mut accumulator = DoubleDouble::zero();
+        accumulator.add(b[row]);
+        accumulator.add(-r[row]);
+        for (position, &(column, scale)) in kept_columns.columns.iter().enumerate() {
+            let entry = data[column * kept_columns.n_rows + row];
+            if skip_zeros && entry == 0.0 {
+                continue;
+            }
+            let value = entry * scale;
+            accumulator.add_product(-value, x[position]);
+        }
+        f[row] = accumulator.value();
+    }
+    let g: Vec<f64> = kept_columns
+        .columns
+        .iter()
+        .enumerate()
+        .map(|(position, &(column, scale))| {
+            let values = &data[column * kept_columns.n_rows..(column + 1) * kept_columns.n_rows];
+            let mut accumulator = DoubleDouble::zero();
+            accumulator.add(c[position]);
+            for row in 0..n_observations {
+                if skip_zeros && values[row] == 0.0 {
+                    continue;
+                }
+                accumulator.add_product(-(values[row] * scale), r[row]);
+            }
+            accumulator.value()
+        })
+        .collect();
+    (f, g)
+}
+
+/// [`dense_residuals`] for a design held as stored rows, each row's entries scattered into a
+/// full row first (zeros included), so that every sum receives the dense terms in the dense
+/// order. Used only when a non-finite operand must meet the zeros.
+fn scattered_residuals(
+    kept_columns: &KeptColumns,
+    b: &[f64],
+    c: &[f64],
+    r: &[f64],
+    x: &[f64],
+    skip_zeros: bool,
+) -> (Vec<f64>, Vec<f64>) {
+    let n_observations = b.len();
+    let mut row_values = vec![0.0; kept_columns.n_columns];
+    let mut f = vec![0.0; n_observations];
+    let mut g_accumulators: Vec<DoubleDouble> = c
+        .iter()
+        .map(|&value| {
+            let mut accumulator = DoubleDouble::zero();
+            accumulator.add(value);
+            accumulator
+        })
+        .collect();
+    for row in 0..n_observations {
+        kept_columns.row_into(row, &mut row_values);
+        let mut accumulator = DoubleDouble::zero();
+        accumulator.add(b[row]);
+        accumulator.add(-r[row]);
+        for (position, &(column, scale)) in kept_columns.columns.iter().enumerate() {
+            let entry = row_values[column];
+            if skip_zeros && entry == 0.0 {
+                continue;
+            }
+            accumulator.add_product(-(entry * scale), x[position]);
+            g_accumulators[position].add_product(-(entry * scale), r[row]);
+        }
+        f[row] = accumulator.value();
+    }
+    (f, g_accumulators.iter().map(DoubleDouble::value).collect())
+}
+
+/// [`dense_residuals`] from the stored non-zero entries (every operand finite): each sum
+/// receives the same non-zero terms in the same order, so the same bits.
+fn sparse_residuals(
+    rows: &SparseRows,
+    kept_columns: &KeptColumns,
+    b: &[f64],
+    c: &[f64],
+    r: &[f64],
+    x: &[f64],
+) -> (Vec<f64>, Vec<f64>) {
+    let n_observations = b.len();
+    let mut f = vec![0.0; n_observations];
+    let mut g_accumulators: Vec<DoubleDouble> = c
+        .iter()
+        .map(|&value| {
+            let mut accumulator = DoubleDouble::zero();
+            accumulator.add(value);
+            accumulator
+        })
+        .collect();
+    for row in 0..n_observations {
+        let mut accumulator = DoubleDouble::zero();
+        accumulator.add(b[row]);
+        accumulator.add(-r[row]);
+        let (columns, entries) = rows.entries(row);
+        for (&column, &entry) in columns.iter().zip(entries) {
+            let position = kept_columns.position_of[column as usize];
+            if position == usize::MAX {
+                continue;
+            }
+            let value = entry * kept_columns.columns[position].1;
+            accumulator.add_product(-value, x[position]);
+            g_accumulators[position].add_product(-value, r[row]);
+        }
+        f[row] = accumulator.value();
+    }
+    (f, g_accumulators.iter().map(DoubleDouble::value).collect())
 }
 
 /// Above this 1-norm condition number of the equilibrated triangular factor

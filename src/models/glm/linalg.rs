@@ -250,6 +250,12 @@ impl SparseRows {
 }
 
 impl SparseRows {
+    /// The stored entries of `row`: design columns (ascending) and values.
+    pub(crate) fn entries(&self, row: usize) -> (&[u32], &[f64]) {
+        let range = self.row_starts[row]..self.row_starts[row + 1];
+        (&self.columns[range.clone()], &self.values[range])
+    }
+
     /// Whether these are the rows of `design` and hold every one of the `active` columns.
     fn covers(&self, design: &DMatrix<f64>, active: &[usize]) -> bool {
         self.n_rows == design.nrows()
