@@ -650,8 +650,8 @@ fn scaled_covariance(
             let mut unit = vec![0.0; rank];
             unit[target] = -1.0;
             let column_solution = refined_augmented_solve(
-                &factorization,
-                &kept_columns,
+                factorization,
+                kept_columns,
                 &zero_response,
                 &unit,
                 options.max_refinement_steps,

@@ -1524,7 +1524,6 @@ fn fit_engine(
     })
 }
 
-/// Builds the full negative Hessian from the accumulated upper triangle.
 // ---------------------------------------------------------------------------------------------
 // Binary logit by Newton–Raphson (which is IRLS for the canonical link), private to the Brant
 // check so that this module does not depend on the general GLM engine.
