@@ -969,10 +969,10 @@ fn refined_augmented_solve(
         // x or r holds a non-finite value, which 0 · ∞ must carry into the sums.
         let skip_zeros = x.iter().chain(&r).all(|v| v.is_finite());
         let (f, g) = match kept_columns.original {
-            Original::Sparse(rows) if skip_zeros => {
-                sparse_residuals(rows, kept_columns, b, c, &r, &x)
+            Original::Sparse(rows) => {
+                stored_row_residuals(rows, kept_columns, b, c, &r, &x, skip_zeros)
             }
-            _ => dense_residuals(kept_columns, b, c, &r, &x, skip_zeros),
+            Original::Dense(data) => dense_residuals(data, kept_columns, b, c, &r, &x, skip_zeros),
         };
         let (r_correction, x_correction) = factorization.solve_augmented(&f, &g);
         let correction = max_abs(&x_correction);
@@ -1008,6 +1008,7 @@ fn refined_augmented_solve(
 /// The refinement's residuals f = b − r − A x and g = c − Aᵀ r in double-double, reading
 /// every entry of A (zeros are skipped when `skip_zeros`).
 fn dense_residuals(
+    data: &[f64],
     kept_columns: &KeptColumns,
     b: &[f64],
     c: &[f64],
@@ -1016,9 +1017,6 @@ fn dense_residuals(
     skip_zeros: bool,
 ) -> (Vec<f64>, Vec<f64>) {
     let n_observations = b.len();
-    let Original::Dense(data) = kept_columns.original else {
-        return scattered_residuals(kept_columns, b, c, r, x, skip_zeros);
-    };
     let mut f = vec![0.0; n_observations];
     for row in 0..n_observations {
         let mut accumulator = DoubleDouble::zero();
@@ -1054,10 +1052,12 @@ fn dense_residuals(
     (f, g)
 }
 
-/// [`dense_residuals`] for a design held as stored rows, each row's entries scattered into a
-/// full row first (zeros included), so that every sum receives the dense terms in the dense
-/// order. Used only when a non-finite operand must meet the zeros.
-fn scattered_residuals(
+/// [`dense_residuals`] for a design held as stored rows, a row at a time: with `skip_zeros`
+/// only the stored non-zeros, otherwise the whole row scattered first (zeros included, so that
+/// a non-finite operand meets them as in the dense pass). Each sum receives the dense pass's
+/// terms in the dense order, so the same bits.
+fn stored_row_residuals(
+    rows: &SparseRows,
     kept_columns: &KeptColumns,
     b: &[f64],
     c: &[f64],
@@ -1077,56 +1077,27 @@ fn scattered_residuals(
         })
         .collect();
     for row in 0..n_observations {
-        kept_columns.row_into(row, &mut row_values);
         let mut accumulator = DoubleDouble::zero();
         accumulator.add(b[row]);
         accumulator.add(-r[row]);
-        for (position, &(column, scale)) in kept_columns.columns.iter().enumerate() {
-            let entry = row_values[column];
-            if skip_zeros && entry == 0.0 {
-                continue;
-            }
-            accumulator.add_product(-(entry * scale), x[position]);
-            g_accumulators[position].add_product(-(entry * scale), r[row]);
-        }
-        f[row] = accumulator.value();
-    }
-    (f, g_accumulators.iter().map(DoubleDouble::value).collect())
-}
-
-/// [`dense_residuals`] from the stored non-zero entries (every operand finite): each sum
-/// receives the same non-zero terms in the same order, so the same bits.
-fn sparse_residuals(
-    rows: &SparseRows,
-    kept_columns: &KeptColumns,
-    b: &[f64],
-    c: &[f64],
-    r: &[f64],
-    x: &[f64],
-) -> (Vec<f64>, Vec<f64>) {
-    let n_observations = b.len();
-    let mut f = vec![0.0; n_observations];
-    let mut g_accumulators: Vec<DoubleDouble> = c
-        .iter()
-        .map(|&value| {
-            let mut accumulator = DoubleDouble::zero();
-            accumulator.add(value);
-            accumulator
-        })
-        .collect();
-    for row in 0..n_observations {
-        let mut accumulator = DoubleDouble::zero();
-        accumulator.add(b[row]);
-        accumulator.add(-r[row]);
-        let (columns, entries) = rows.entries(row);
-        for (&column, &entry) in columns.iter().zip(entries) {
-            let position = kept_columns.position_of[column as usize];
-            if position == usize::MAX {
-                continue;
-            }
+        let mut add = |position: usize, entry: f64| {
             let value = entry * kept_columns.columns[position].1;
             accumulator.add_product(-value, x[position]);
             g_accumulators[position].add_product(-value, r[row]);
+        };
+        if skip_zeros {
+            let (columns, entries) = rows.entries(row);
+            for (&column, &entry) in columns.iter().zip(entries) {
+                let position = kept_columns.position_of[column as usize];
+                if position != usize::MAX {
+                    add(position, entry);
+                }
+            }
+        } else {
+            kept_columns.row_into(row, &mut row_values);
+            for (position, &(column, _)) in kept_columns.columns.iter().enumerate() {
+                add(position, row_values[column]);
+            }
         }
         f[row] = accumulator.value();
     }

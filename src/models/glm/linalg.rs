@@ -264,6 +264,15 @@ impl SparseRows {
     }
 }
 
+/// Per design column (of `n_columns`), its position in `active`; `usize::MAX` when absent.
+fn positions_in(active: &[usize], n_columns: usize) -> Vec<usize> {
+    let mut position_of = vec![usize::MAX; n_columns];
+    for (a, &column) in active.iter().enumerate() {
+        position_of[column] = a;
+    }
+    position_of
+}
+
 /// [`weighted_cross_product`], reading the non-zeros from `rows` when the fit built them.
 pub(crate) fn weighted_cross_product_from(
     design: &DMatrix<f64>,
@@ -316,10 +325,7 @@ fn sparse_weighted_cross_product(
     // every active column.
     let rows =
         rows.filter(|rows| rows.covers(design, active) && active.windows(2).all(|p| p[0] < p[1]));
-    let mut position_of = vec![usize::MAX; design.ncols()];
-    for (a, &column) in active.iter().enumerate() {
-        position_of[column] = a;
-    }
+    let position_of = positions_in(active, design.ncols());
     let n_rows = design.nrows();
     let n_active = active.len();
     let data = design.as_slice();
@@ -384,10 +390,7 @@ pub(crate) fn transpose_multiply(
             && vector.len() == n_rows
             && vector.iter().all(|v| v.is_finite())
     }) {
-        let mut position_of = vec![usize::MAX; design.ncols()];
-        for (a, &column) in active.iter().enumerate() {
-            position_of[column] = a;
-        }
+        let position_of = positions_in(active, design.ncols());
         let mut totals = vec![-0.0_f64; active.len()];
         for (row, &v) in vector.iter().enumerate() {
             for entry in rows.row_starts[row]..rows.row_starts[row + 1] {
