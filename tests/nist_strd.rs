@@ -11,7 +11,11 @@
 //! Run with `cargo test --test nist_strd -- --nocapture` to see the table of
 //! minimum LREs per data set.
 
-use cairn::models::linear::{LeastSquaresOptions, fit_least_squares};
+use cairn::models::SparseRows;
+use cairn::models::linear::{
+    LeastSquaresError, LeastSquaresFit, LeastSquaresOptions, fit_least_squares,
+    fit_least_squares_rows,
+};
 use nalgebra::DMatrix;
 use std::path::PathBuf;
 
@@ -177,6 +181,7 @@ struct Scores {
     residual_standard_deviation: f64,
     r_squared: f64,
     refinement_steps: usize,
+    converged: bool,
 }
 
 impl Scores {
@@ -188,12 +193,29 @@ impl Scores {
     }
 }
 
-fn score_dataset(name: &str) -> Scores {
+/// A least-squares route: the dense QR, or the row-block factorization of the stored rows.
+type Route = fn(&DMatrix<f64>, &[f64]) -> Result<LeastSquaresFit, LeastSquaresError>;
+
+fn dense_route(
+    design: &DMatrix<f64>,
+    response: &[f64],
+) -> Result<LeastSquaresFit, LeastSquaresError> {
+    fit_least_squares(design, response, &LeastSquaresOptions::default())
+}
+
+fn row_block_route(
+    design: &DMatrix<f64>,
+    response: &[f64],
+) -> Result<LeastSquaresFit, LeastSquaresError> {
+    let rows = SparseRows::from_dense(design).expect("a small design converts");
+    fit_least_squares_rows(&rows, response, &LeastSquaresOptions::default())
+}
+
+fn score_dataset(name: &str, route: Route) -> Scores {
     let dataset = read_dataset(name);
     let (design, has_intercept) = design_for(name, &dataset.rows);
     let response: Vec<f64> = dataset.rows.iter().map(|row| row[0]).collect();
-    let fit = fit_least_squares(&design, &response, &LeastSquaresOptions::default())
-        .unwrap_or_else(|error| panic!("{name}: {error}"));
+    let fit = route(&design, &response).unwrap_or_else(|error| panic!("{name}: {error}"));
     let certified = &dataset.certified;
     assert_eq!(
         certified.estimates.len(),
@@ -224,10 +246,7 @@ fn score_dataset(name: &str) -> Scores {
     }
     // The refinement must end by meeting its convergence test on every data
     // set (it does in 1–3 steps); stagnation would signal a regression.
-    assert!(
-        fit.refinement_converged,
-        "{name}: refinement did not converge"
-    );
+    let converged = fit.refinement_converged;
     let residual_sd = fit.residual_standard_deviation().expect("residual df ≥ 1");
     let r_squared = fit
         .r_squared(&response, has_intercept)
@@ -241,6 +260,7 @@ fn score_dataset(name: &str) -> Scores {
         ),
         r_squared: log_relative_error(r_squared, certified.r_squared),
         refinement_steps: fit.refinement_steps,
+        converged,
     }
 }
 
@@ -270,15 +290,48 @@ const DATASETS: [(&str, f64, f64); 11] = [
 // each .dat file; LRE as in McCullough (1998). Requirements and floors in DATASETS.
 #[test]
 fn nist_strd_linear_regression_certified_values() {
+    score_every_dataset(dense_route, &DATASETS, &[]);
+}
+
+/// [`DATASETS`] for the row-block route (`fit_least_squares_rows`, used for large designs):
+/// the same requirements; floors measured in the same way (printed table, 2 Dec 2026), which
+/// came out the same as the dense route's.
+const ROW_BLOCK_DATASETS: [(&str, f64, f64); 11] = [
+    ("Norris", 10.0, 13.5),
+    ("Pontius", 10.0, 13.5),
+    ("NoInt1", 10.0, 14.5),
+    ("NoInt2", 10.0, 14.5),
+    ("Filip", 7.0, 7.5),
+    ("Longley", 10.0, 14.5),
+    ("Wampler1", 10.0, 15.0),
+    ("Wampler2", 10.0, 13.0),
+    ("Wampler3", 10.0, 14.0),
+    ("Wampler4", 10.0, 14.0),
+    ("Wampler5", 10.0, 13.5),
+];
+
+// Source: as above, NIST StRD certified values, through the route that factors the stored
+// rows in blocks and refines the semi-normal equations.
+#[test]
+fn nist_strd_certified_values_through_the_row_block_factorization() {
+    // Filip, the worst-conditioned data set, is where refinement of the semi-normal equations
+    // (whose rate is about κ²·ε) stops shrinking before its convergence test; its digits still
+    // meet the requirement, as many as the dense route's. Every other data set must converge.
+    score_every_dataset(row_block_route, &ROW_BLOCK_DATASETS, &["Filip"]);
+}
+
+/// Scores every data set through `route`, asserting the floors and that the refinement met
+/// its convergence test everywhere except on the data sets named in `may_stall`.
+fn score_every_dataset(route: Route, datasets: &[(&str, f64, f64)], may_stall: &[&str]) {
     println!();
     println!(
         "{:<9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>6}",
         "dataset", "estimate", "sd(est)", "resid sd", "R2", "minimum", "steps"
     );
     let mut failures = Vec::new();
-    for (name, requirement, floor) in DATASETS {
+    for &(name, requirement, floor) in datasets {
         assert!(floor >= requirement, "{name}: floor below the requirement");
-        let scores = score_dataset(name);
+        let scores = score_dataset(name, route);
         println!(
             "{:<9} {:>9.2} {:>9.2} {:>9.2} {:>9.2} {:>9.2} {:>6}",
             name,
@@ -289,6 +342,12 @@ fn nist_strd_linear_regression_certified_values() {
             scores.minimum(),
             scores.refinement_steps
         );
+        if !scores.converged {
+            println!("{name}: the refinement did not meet its convergence test");
+            if !may_stall.contains(&name) {
+                failures.push(format!("{name}: refinement did not converge"));
+            }
+        }
         if scores.minimum() < floor {
             failures.push(format!(
                 "{name}: minimum LRE {:.2} < {floor}",

@@ -431,6 +431,311 @@ pub fn fit_least_squares_in_place(
     outcome
 }
 
+/// Rows per block of [`fit_least_squares_rows`]' factorization: fixed, so that the bits depend
+/// on the data alone (never on the machine or the number of threads).
+const FACTOR_BLOCK: usize = 128;
+
+/// [`fit_least_squares`] for a design held as rows of non-zero entries, without ever forming
+/// the n × p matrix or n × p Householder vectors: the workspace is O(p²) beside the design's
+/// own stored entries, so that a design of 10⁶ rows and 50 columns of dummies needs tens, not
+/// hundreds, of megabytes.
+///
+/// # Method
+///
+/// 1. **Exact equilibration**, as in [`fit_least_squares`] (powers of two, taken from the
+///    stored entries), and of the response likewise.
+/// 2. **Householder QR in row blocks** (sometimes called a tall-skinny or sequential QR;
+///    Golub & Van Loan 2013, §5.2.2 and §5.6 on updating): the triangle `[R z; 0 ρ]` of the
+///    augmented matrix `[A y]` is kept, and each block of [`FACTOR_BLOCK`] rows is absorbed by
+///    the Householder reflections that zero it beneath the triangle. The result is the
+///    triangle of one orthogonal factorization `[A y] = Q [R z; 0 ρ]` and is backward stable
+///    like any Householder QR; `Q` is not kept. No column is pivoted at this stage: a column
+///    in the span of earlier ones leaves a negligible diagonal entry, and the reflections stay
+///    orthogonal whatever it is.
+/// 3. **Rank decisions on `R`.** `R` has the same column norms and the same distances of each
+///    column to the span of any other columns as `A` (`Q` is orthogonal), so the deferred
+///    pivoting of [`fit_least_squares`] applied to `R` takes the same decisions, by the same
+///    relative test; it also gives the triangular factor of the accepted columns.
+/// 4. **Solution and refinement.** The first solution comes from `z` (the leading part of
+///    `Qᵀy`), as in any QR solve. Without `Q`, the refinement is of the semi-normal equations
+///    `RᵀR x = Aᵀy` (corrected semi-normal equations; Björck 1987, "Stability analysis of the
+///    method of seminormal equations for linear least squares problems", *Linear Algebra
+///    Appl.* 88–89:31–48, and Björck 1996 on the semi-normal equations; cited from memory):
+///    `h = Aᵀ(y − A x)` is accumulated in double-double, `RᵀR d = h` is solved with the
+///    triangle and `x ← x + d`, with the same stopping rule as the augmented refinement. Each
+///    step multiplies the error by about κ(A)²·ε, so a well-conditioned design (treatment,
+///    site and baseline columns, κ of order 10–100) reaches full precision in one or two steps.
+///    The covariance is `R⁻¹R⁻ᵀ`, refined column by column in the same way above the same
+///    condition threshold as [`fit_least_squares`].
+///
+/// The digits agree with [`fit_least_squares`] to the accuracy each achieves (the last bits
+/// can differ); `tests/nist_strd.rs` checks this route against the certified values too.
+/// `rows` must hold every design column ([`SparseRows::from_dense`] and
+/// [`crate::models::SparseRowsBuilder`] do).
+pub fn fit_least_squares_rows(
+    rows: &SparseRows,
+    response: &[f64],
+    options: &LeastSquaresOptions,
+) -> Result<LeastSquaresFit, LeastSquaresError> {
+    check_options(options)?;
+    let (n_observations, n_columns) = (rows.nrows(), rows.ncols());
+    if n_observations == 0 || n_columns == 0 {
+        return Err(LeastSquaresError::EmptyDesign {
+            n_observations,
+            n_columns,
+        });
+    }
+    if response.len() != n_observations {
+        return Err(LeastSquaresError::DimensionMismatch {
+            design_rows: n_observations,
+            response_length: response.len(),
+        });
+    }
+    debug_assert!(rows.holds_every_column());
+    // The first non-finite entry in column-major order, as the dense check reports it.
+    let mut first_non_finite: Option<(usize, usize)> = None;
+    let mut largest = vec![0.0_f64; n_columns];
+    for row in 0..n_observations {
+        let (columns, values) = rows.entries(row);
+        for (&column, &value) in columns.iter().zip(values) {
+            let column = column as usize;
+            if !value.is_finite() {
+                if first_non_finite.is_none_or(|(c, _)| column < c) {
+                    first_non_finite = Some((column, row));
+                }
+            } else {
+                largest[column] = largest[column].max(value.abs());
+            }
+        }
+    }
+    if let Some((column, row)) = first_non_finite {
+        return Err(LeastSquaresError::NonFiniteDesign { row, column });
+    }
+    if let Some(row) = response.iter().position(|value| !value.is_finite()) {
+        return Err(LeastSquaresError::NonFiniteResponse { row });
+    }
+    let column_scales: Vec<f64> = largest
+        .iter()
+        .map(|&value| power_of_two_scale(value))
+        .collect();
+    let response_scale = power_of_two_scale(
+        response
+            .iter()
+            .map(|value| value.abs())
+            .fold(0.0_f64, f64::max),
+    );
+    let size = n_columns + 1;
+    let triangle = streamed_triangle(rows, &column_scales, response, response_scale);
+    let mut storage = vec![0.0; n_columns * n_columns];
+    for column in 0..n_columns {
+        storage[column * n_columns..(column + 1) * n_columns]
+            .copy_from_slice(&triangle[column * size..column * size + n_columns]);
+    }
+    // Undoing a power-of-two scale is exact.
+    let rotated_response: Vec<f64> = triangle[n_columns * size..n_columns * size + n_columns]
+        .iter()
+        .map(|value| value / response_scale)
+        .collect();
+    let factorization = PivotedQr::new(storage, n_columns, n_columns, options.rank_tolerance);
+    solve_factored(
+        Factors::Triangle {
+            qr: &factorization,
+            rotated_response: &rotated_response,
+        },
+        n_observations,
+        n_columns,
+        &column_scales,
+        Original::Sparse(rows),
+        response,
+        options,
+        true,
+    )
+}
+
+/// The upper triangle `[R z; 0 ρ]` (column-major, (p + 1)², p = `column_scales.len()`) of the
+/// equilibrated `[A y]`, absorbing [`FACTOR_BLOCK`] rows at a time.
+fn streamed_triangle(
+    rows: &SparseRows,
+    column_scales: &[f64],
+    response: &[f64],
+    response_scale: f64,
+) -> Vec<f64> {
+    let n_columns = column_scales.len();
+    let size = n_columns + 1;
+    let n_rows = rows.nrows();
+    let mut triangle = vec![0.0; size * size];
+    let mut workspace = vec![0.0; FACTOR_BLOCK * size];
+    let mut start = 0;
+    while start < n_rows {
+        let end = (start + FACTOR_BLOCK).min(n_rows);
+        let height = end - start;
+        let block = &mut workspace[..height * size];
+        block.iter_mut().for_each(|value| *value = 0.0);
+        for (offset, row) in (start..end).enumerate() {
+            let (columns, values) = rows.entries(row);
+            for (&column, &value) in columns.iter().zip(values) {
+                let column = column as usize;
+                block[column * height + offset] = value * column_scales[column];
+            }
+            block[n_columns * height + offset] = response[row] * response_scale;
+        }
+        absorb_block(&mut triangle, size, block, height);
+        start = end;
+    }
+    triangle
+}
+
+/// Reflects the `height` rows of `block` (column-major, `size` columns) into the upper triangle
+/// `triangle` (column-major, `size × size`): for each column `j`, the reflection of
+/// `[triangle[j][j]; block[·][j]]` onto its first entry, applied to the later columns.
+fn absorb_block(triangle: &mut [f64], size: usize, block: &mut [f64], height: usize) {
+    const GROUP: usize = 4;
+    for j in 0..size {
+        let (before, after) = block.split_at_mut((j + 1) * height);
+        let pivot = &before[j * height..];
+        let below: f64 = pivot.iter().map(|value| value * value).sum();
+        if below == 0.0 {
+            // Nothing beneath the triangle in this column: the reflection is the identity.
+            continue;
+        }
+        let leading = triangle[j * size + j];
+        let norm = (leading * leading + below).sqrt();
+        // The sign choice avoids cancellation in v_0 = x_0 − α.
+        let alpha = if leading >= 0.0 { -norm } else { norm };
+        let head = leading - alpha;
+        let beta = 2.0 / (head * head + below);
+        // Later columns in groups, so that several projections accumulate side by side.
+        let later = size - j - 1;
+        let mut k = 0;
+        while k < later {
+            let members = GROUP.min(later - k);
+            let mut projections = [0.0_f64; GROUP];
+            for (member, projection) in projections.iter_mut().enumerate().take(members) {
+                *projection = head * triangle[(j + 1 + k + member) * size + j];
+            }
+            {
+                let targets = &after[k * height..(k + members) * height];
+                if members == GROUP {
+                    let columns: [&[f64]; GROUP] =
+                        std::array::from_fn(|m| &targets[m * height..(m + 1) * height]);
+                    for (i, &v) in pivot.iter().enumerate() {
+                        for m in 0..GROUP {
+                            projections[m] += v * columns[m][i];
+                        }
+                    }
+                } else {
+                    for (member, projection) in projections.iter_mut().enumerate().take(members) {
+                        let column = &targets[member * height..(member + 1) * height];
+                        for (v, t) in pivot.iter().zip(column) {
+                            *projection += v * t;
+                        }
+                    }
+                }
+            }
+            for (member, projection) in projections.iter().enumerate().take(members) {
+                let factor = beta * projection;
+                let index = (j + 1 + k + member) * size + j;
+                triangle[index] -= factor * head;
+                let column = &mut after[(k + member) * height..(k + member + 1) * height];
+                for (t, v) in column.iter_mut().zip(pivot) {
+                    *t -= factor * v;
+                }
+            }
+            k += members;
+        }
+        triangle[j * size + j] = alpha;
+    }
+}
+
+/// Solves the semi-normal equations `RᵀR x = Aᵀb − c` for the accepted columns, starting from
+/// the QR solution with `rotated_b` (the leading part of `Qᵀb`), and refines `x` with
+/// `h = Aᵀ(b − A x) − c` in double-double, by the rule of [`refined_augmented_solve`].
+fn refined_seminormal_solve(
+    factorization: &PivotedQr,
+    kept_columns: &KeptColumns,
+    b: &[f64],
+    rotated_b: &[f64],
+    c: &[f64],
+    max_refinement_steps: usize,
+) -> AugmentedSolution {
+    let (_, mut x) = factorization.solve_augmented(rotated_b, c);
+    let zeros = vec![0.0; factorization.n_observations];
+    let mut previous_correction = max_abs(&x);
+    let mut refinement_steps = 0;
+    let mut converged = false;
+    for _ in 0..max_refinement_steps {
+        if !x.iter().all(|value| value.is_finite()) {
+            break;
+        }
+        let negated_residual: Vec<f64> = normal_equations_residual(kept_columns, b, c, &x)
+            .iter()
+            .map(|value| -value)
+            .collect();
+        // [I R; Rᵀ 0] [r; d] = [0; −h] gives RᵀR d = h.
+        let (_, x_correction) = factorization.solve_augmented(&zeros, &negated_residual);
+        let correction = max_abs(&x_correction);
+        if correction == 0.0 {
+            converged = true;
+            break;
+        }
+        if correction > 0.5 * previous_correction || correction.is_nan() {
+            break;
+        }
+        for (value, delta) in x.iter_mut().zip(&x_correction) {
+            *value += delta;
+        }
+        refinement_steps += 1;
+        if correction <= f64::EPSILON * max_abs(&x) {
+            converged = true;
+            break;
+        }
+        previous_correction = correction;
+    }
+    AugmentedSolution {
+        x,
+        refinement_steps,
+        converged,
+    }
+}
+
+/// `Aᵀ(b − A x) − c` over the accepted (equilibrated) columns, each row's residual and each
+/// sum accumulated in double-double; zero entries add exact zeros and are skipped (`x` is
+/// finite here).
+fn normal_equations_residual(
+    kept_columns: &KeptColumns,
+    b: &[f64],
+    c: &[f64],
+    x: &[f64],
+) -> Vec<f64> {
+    let mut sums: Vec<DoubleDouble> = c
+        .iter()
+        .map(|&value| {
+            let mut sum = DoubleDouble::zero();
+            sum.add(-value);
+            sum
+        })
+        .collect();
+    let mut entries: Vec<(usize, f64)> = Vec::with_capacity(kept_columns.columns.len());
+    for (row, &b_row) in b.iter().enumerate() {
+        entries.clear();
+        kept_columns.scaled_entries_into(row, &mut entries);
+        let mut residual = DoubleDouble::zero();
+        residual.add(b_row);
+        for &(position, value) in &entries {
+            residual.add_product(-value, x[position]);
+        }
+        // The residual is kept to about twice the working precision (its rounding to one
+        // double would leave an error of ε·|A|ᵀ|r| in h, which a large-residual problem such as
+        // NIST's Wampler 4 and 5 turns into lost digits).
+        let (high, low) = residual.split();
+        for &(position, value) in &entries {
+            sums[position].add_product(value, high);
+            sums[position].add_product(value, low);
+        }
+    }
+    sums.iter().map(DoubleDouble::value).collect()
+}
+
 /// The design as the refinement and the fitted values read it: its column-major values, or
 /// its non-zero entries row by row while its storage serves as the factorization's workspace.
 #[derive(Clone, Copy)]
@@ -455,7 +760,7 @@ fn solve(
 ) -> (Result<LeastSquaresFit, LeastSquaresError>, Vec<f64>) {
     let factorization = PivotedQr::new(storage, n_observations, n_columns, options.rank_tolerance);
     let outcome = solve_factored(
-        &factorization,
+        Factors::Design(&factorization),
         n_observations,
         n_columns,
         column_scales,
@@ -467,9 +772,62 @@ fn solve(
     (outcome, factorization.work)
 }
 
+/// The factorization a fit refines with.
+#[derive(Clone, Copy)]
+enum Factors<'a> {
+    /// The Householder QR of the design itself: the augmented system is refined.
+    Design(&'a PivotedQr),
+    /// The pivoted QR of the triangular factor `R` of a design factored in row blocks
+    /// (`A = Q R`, `Q` not kept), with the leading part of `Qᵀy`: the semi-normal equations
+    /// are refined (see [`fit_least_squares_rows`]).
+    Triangle {
+        qr: &'a PivotedQr,
+        rotated_response: &'a [f64],
+    },
+}
+
+impl<'a> Factors<'a> {
+    /// The pivoted factorization whose accepted columns and triangle the fit uses.
+    fn qr(&self) -> &'a PivotedQr {
+        match *self {
+            Factors::Design(qr) | Factors::Triangle { qr, .. } => qr,
+        }
+    }
+
+    /// Solves and refines for right-hand side `(b, c)`; `b_is_response` says whether `b` is
+    /// the response (whose rotation a triangle factorization holds) or zero.
+    fn refined_solve(
+        &self,
+        kept_columns: &KeptColumns,
+        b: &[f64],
+        b_is_response: bool,
+        c: &[f64],
+        max_refinement_steps: usize,
+    ) -> AugmentedSolution {
+        match *self {
+            Factors::Design(qr) => {
+                refined_augmented_solve(qr, kept_columns, b, c, max_refinement_steps)
+            }
+            Factors::Triangle {
+                qr,
+                rotated_response,
+            } => {
+                let zeros;
+                let rotated = if b_is_response {
+                    rotated_response
+                } else {
+                    zeros = vec![0.0; rotated_response.len()];
+                    &zeros
+                };
+                refined_seminormal_solve(qr, kept_columns, b, rotated, c, max_refinement_steps)
+            }
+        }
+    }
+}
+
 #[allow(clippy::too_many_arguments)]
 fn solve_factored(
-    factorization: &PivotedQr,
+    factors: Factors<'_>,
     n_observations: usize,
     n_columns: usize,
     column_scales: &[f64],
@@ -478,6 +836,7 @@ fn solve_factored(
     options: &LeastSquaresOptions,
     with_covariance: bool,
 ) -> Result<LeastSquaresFit, LeastSquaresError> {
+    let factorization = factors.qr();
     let rank = factorization.kept.len();
     if rank == 0 {
         return Err(LeastSquaresError::NoEstimableColumns { n_columns });
@@ -505,10 +864,10 @@ fn solve_factored(
     };
 
     // Coefficients of the scaled, reduced problem: b = y, c = 0.
-    let solution = refined_augmented_solve(
-        factorization,
+    let solution = factors.refined_solve(
         &kept_columns,
         response,
+        true,
         &vec![0.0; rank],
         options.max_refinement_steps,
     );
@@ -524,7 +883,7 @@ fn solve_factored(
     // that bound is no longer far below the digits a report shows, and each
     // column is refined instead: b = 0, c = −e_t.
     let scaled_inverse = if with_covariance {
-        scaled_covariance(factorization, &kept_columns, n_observations, options)
+        scaled_covariance(factors, &kept_columns, n_observations, options)
     } else {
         DMatrix::<f64>::zeros(rank, rank)
     };
@@ -619,11 +978,12 @@ fn solve_factored(
 
 /// `(AᵀA)⁻¹` of the equilibrated accepted columns, in pivot order (see [`fit`]).
 fn scaled_covariance(
-    factorization: &PivotedQr,
+    factors: Factors<'_>,
     kept_columns: &KeptColumns,
     n_observations: usize,
     options: &LeastSquaresOptions,
 ) -> DMatrix<f64> {
+    let factorization = factors.qr();
     let rank = factorization.kept.len();
     let inverse_triangular = upper_triangular_inverse(&factorization.triangular);
     let condition = one_norm_upper(&factorization.triangular) * one_norm_upper(&inverse_triangular);
@@ -649,10 +1009,10 @@ fn scaled_covariance(
         for target in 0..rank {
             let mut unit = vec![0.0; rank];
             unit[target] = -1.0;
-            let column_solution = refined_augmented_solve(
-                factorization,
+            let column_solution = factors.refined_solve(
                 kept_columns,
                 &zero_response,
+                false,
                 &unit,
                 options.max_refinement_steps,
             );
@@ -696,20 +1056,26 @@ fn equilibrate_storage(storage: &mut [f64], n_observations: usize, n_columns: us
             .iter()
             .map(|value| value.abs())
             .fold(0.0_f64, f64::max);
-        let scale = if largest > 0.0 {
-            // Clamping keeps 2^exponent a normal number, so the scaling stays exact
-            // except for entries that would become subnormal anyway.
-            let exponent = (largest.log2().floor() as i32).clamp(-1000, 1000);
-            2.0_f64.ppowi(-exponent)
-        } else {
-            1.0
-        };
+        let scale = power_of_two_scale(largest);
         for value in column.iter_mut() {
             *value *= scale;
         }
         column_scales.push(scale);
     }
     column_scales
+}
+
+/// The power of two that brings `largest` (a column's largest absolute entry) into [1, 2);
+/// 1 for a zero column.
+fn power_of_two_scale(largest: f64) -> f64 {
+    if largest > 0.0 {
+        // Clamping keeps 2^exponent a normal number, so the scaling stays exact
+        // except for entries that would become subnormal anyway.
+        let exponent = (largest.log2().floor() as i32).clamp(-1000, 1000);
+        2.0_f64.ppowi(-exponent)
+    } else {
+        1.0
+    }
 }
 
 /// Euclidean norm without overflow for entries of moderate size (the columns
@@ -921,6 +1287,30 @@ struct KeptColumns<'a> {
 }
 
 impl KeptColumns<'_> {
+    /// The non-zero entries of `row` in the accepted columns, equilibrated, as (pivot
+    /// position, value), in design-column order.
+    fn scaled_entries_into(&self, row: usize, entries: &mut Vec<(usize, f64)>) {
+        match self.original {
+            Original::Dense(data) => {
+                for (position, &(column, scale)) in self.columns.iter().enumerate() {
+                    let value = data[column * self.n_rows + row];
+                    if value != 0.0 {
+                        entries.push((position, value * scale));
+                    }
+                }
+            }
+            Original::Sparse(rows) => {
+                let (columns, values) = rows.entries(row);
+                for (&column, &value) in columns.iter().zip(values) {
+                    let position = self.position_of[column as usize];
+                    if position != usize::MAX {
+                        entries.push((position, value * self.columns[position].1));
+                    }
+                }
+            }
+        }
+    }
+
     /// Every design entry of `row`, zeros included, into `values` (one per design column).
     fn row_into(&self, row: usize, values: &mut [f64]) {
         match self.original {
@@ -1191,6 +1581,13 @@ impl DoubleDouble {
 
     fn value(&self) -> f64 {
         self.high + self.low
+    }
+
+    /// The value as a rounded double and the remainder (Dekker's fast two-sum; `high`
+    /// dominates `low`).
+    fn split(&self) -> (f64, f64) {
+        let high = self.high + self.low;
+        (high, self.low - (high - self.high))
     }
 }
 

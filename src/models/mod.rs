@@ -9,6 +9,7 @@ mod newton;
 pub mod ordinal;
 pub mod portable;
 
+pub use glm::linalg::{SparseRows, SparseRowsBuilder};
 use nalgebra::DMatrix;
 
 /// Some columns of a column-major design, read in place: column `c` of the view is column

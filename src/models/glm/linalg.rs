@@ -185,8 +185,12 @@ impl BlockNonZeros {
 
 /// The non-zero entries of a design, row by row (compressed sparse rows), built once per
 /// fit when the design is sparse, so that every cross-product of the fit reads the few
-/// non-zeros of a row instead of scanning all p columns for them.
-pub(crate) struct SparseRows {
+/// non-zeros of a row instead of scanning all p columns for them. A large design is built in
+/// this form from the start and never held dense (see [`crate::design`]).
+///
+/// An entry that is `+0.0` is not stored; `-0.0` and every other value are.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SparseRows {
     n_rows: usize,
     n_columns: usize,
     /// Per design column: whether its non-zeros are stored (the columns of the fit).
@@ -250,8 +254,80 @@ impl SparseRows {
 }
 
 impl SparseRows {
+    /// Every column of `design`, however dense, storing each entry that is not `+0.0`
+    /// (so that `-0.0` survives a round trip through [`SparseRows::to_dense`]).
+    pub fn from_dense(design: &DMatrix<f64>) -> Option<SparseRows> {
+        let (n_rows, n_columns) = design.shape();
+        if n_columns > u32::MAX as usize {
+            return None;
+        }
+        let mut builder = SparseRowsBuilder::new(n_columns);
+        let data = design.as_slice();
+        for row in 0..n_rows {
+            for column in 0..n_columns {
+                let value = data[column * n_rows + row];
+                if value != 0.0 || value.is_sign_negative() {
+                    builder.push(column, value);
+                }
+            }
+            builder.end_row();
+        }
+        Some(builder.finish())
+    }
+
+    pub fn nrows(&self) -> usize {
+        self.n_rows
+    }
+
+    pub fn ncols(&self) -> usize {
+        self.n_columns
+    }
+
+    /// Number of stored entries.
+    pub fn stored(&self) -> usize {
+        self.values.len()
+    }
+
+    /// Whether every design column's entries are stored (a fit's own rows may hold fewer).
+    pub fn holds_every_column(&self) -> bool {
+        self.held.iter().all(|&held| held)
+    }
+
+    /// The dense n × p matrix these rows describe (for the rare routes that need one).
+    pub fn to_dense(&self) -> DMatrix<f64> {
+        let mut dense = DMatrix::<f64>::zeros(self.n_rows, self.n_columns);
+        for row in 0..self.n_rows {
+            let (columns, values) = self.entries(row);
+            for (&column, &value) in columns.iter().zip(values) {
+                dense[(row, column as usize)] = value;
+            }
+        }
+        dense
+    }
+
+    /// Sum of column `column` over the rows, in row order.
+    pub fn column_sum(&self, column: usize) -> f64 {
+        let mut sum = 0.0;
+        for row in 0..self.n_rows {
+            let (columns, values) = self.entries(row);
+            if let Ok(index) = columns.binary_search(&(column as u32)) {
+                sum += values[index];
+            }
+        }
+        sum
+    }
+
+    /// The entry at (`row`, `column`); 0 when it is not stored.
+    pub fn get(&self, row: usize, column: usize) -> f64 {
+        let (columns, values) = self.entries(row);
+        columns
+            .binary_search(&(column as u32))
+            .map(|index| values[index])
+            .unwrap_or(0.0)
+    }
+
     /// The stored entries of `row`: design columns (ascending) and values.
-    pub(crate) fn entries(&self, row: usize) -> (&[u32], &[f64]) {
+    pub fn entries(&self, row: usize) -> (&[u32], &[f64]) {
         let range = self.row_starts[row]..self.row_starts[row + 1];
         (&self.columns[range.clone()], &self.values[range])
     }
@@ -261,6 +337,62 @@ impl SparseRows {
         self.n_rows == design.nrows()
             && self.n_columns == design.ncols()
             && active.iter().all(|&column| self.held[column])
+    }
+}
+
+/// Builds [`SparseRows`] a row at a time, holding every column.
+pub struct SparseRowsBuilder {
+    n_columns: usize,
+    row_starts: Vec<usize>,
+    columns: Vec<u32>,
+    values: Vec<f64>,
+}
+
+impl SparseRowsBuilder {
+    pub fn new(n_columns: usize) -> SparseRowsBuilder {
+        SparseRowsBuilder {
+            n_columns,
+            row_starts: vec![0],
+            columns: Vec::new(),
+            values: Vec::new(),
+        }
+    }
+
+    /// Room for `rows` rows of `entries` stored entries in all.
+    pub fn reserve(&mut self, rows: usize, entries: usize) {
+        self.row_starts.reserve_exact(rows);
+        self.columns.reserve_exact(entries);
+        self.values.reserve_exact(entries);
+    }
+
+    /// Adds an entry to the current row; columns must come in ascending order.
+    pub fn push(&mut self, column: usize, value: f64) {
+        debug_assert!(column < self.n_columns);
+        debug_assert!(
+            self.columns.len() == *self.row_starts.last().unwrap_or(&0)
+                || self
+                    .columns
+                    .last()
+                    .is_some_and(|&last| (last as usize) < column)
+        );
+        self.columns.push(column as u32);
+        self.values.push(value);
+    }
+
+    /// Ends the current row.
+    pub fn end_row(&mut self) {
+        self.row_starts.push(self.columns.len());
+    }
+
+    pub fn finish(self) -> SparseRows {
+        SparseRows {
+            n_rows: self.row_starts.len() - 1,
+            n_columns: self.n_columns,
+            held: vec![true; self.n_columns],
+            row_starts: self.row_starts,
+            columns: self.columns,
+            values: self.values,
+        }
     }
 }
 
