@@ -138,6 +138,7 @@ fn main() -> ExitCode {
                 mode: Mode::DryRun { seed },
                 only: Vec::new(),
                 jobs: usize::from(jobs),
+                ..RunOptions::default()
             },
             "dry-run",
         ),
@@ -155,6 +156,7 @@ fn main() -> ExitCode {
                 mode: Mode::Unblinded,
                 only,
                 jobs: usize::from(jobs),
+                ..RunOptions::default()
             },
             "run",
         ),

@@ -39,6 +39,10 @@ pub struct RunOptions {
     /// not depend on it: every analysis is computed by one thread, whichever, and the results
     /// are put together in plan order. Memory grows with it (one design per analysis in flight).
     pub jobs: usize,
+    /// How designs are held ([`design::Layout`]); by their size unless a test says otherwise.
+    /// Not a command-line option: only a linear fit's last bits can depend on it (its
+    /// row-block route is a different factorization; `tests/design_layouts.rs`).
+    pub layout: design::Layout,
 }
 
 impl Default for RunOptions {
@@ -47,6 +51,7 @@ impl Default for RunOptions {
             mode: Mode::Unblinded,
             only: Vec::new(),
             jobs: 1,
+            layout: design::Layout::BySize,
         }
     }
 }
@@ -346,7 +351,7 @@ pub fn produce(inputs: &Inputs, options: &RunOptions) -> Result<Staged, Error> {
         if !options.only.is_empty() && !options.only.contains(&analysis.id) {
             return Ok((not_run(plan, analysis), own));
         }
-        let mut design = design::build(plan, analysis, &inputs.data)?;
+        let mut design = design::build_with_layout(plan, analysis, &inputs.data, options.layout)?;
         if let Some(limit) = analysis.max_excluded {
             let in_population: usize = design.in_population.iter().sum();
             let excluded: usize = design

@@ -124,7 +124,12 @@ pub fn verify(dir: &Path, plan: Option<&Path>, jobs: usize) -> Result<Verificati
                 .collect()
         })
         .unwrap_or_default();
-    let options = RunOptions { mode, only, jobs };
+    let options = RunOptions {
+        mode,
+        only,
+        jobs,
+        ..RunOptions::default()
+    };
 
     // Re-hash every recorded input where it is now.
     let folder = plan_path

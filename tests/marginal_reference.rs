@@ -12,8 +12,8 @@ use cairn::inference::marginal::{
     ArmMarginalMean, EffectScale, MarginalEffect, MarginalError, MarginalInput, MarginalMeans,
     MarginalVariance, marginal_effects, marginal_means,
 };
-use cairn::models::StopReason;
 use cairn::models::glm::{Family, GlmData, GlmOptions, Link, fit_glm};
+use cairn::models::{DesignInput, StopReason};
 use nalgebra::DMatrix;
 use serde_json::Value;
 
@@ -137,7 +137,7 @@ fn input_of<'a>(
     variance: MarginalVariance,
 ) -> MarginalInput<'a> {
     MarginalInput {
-        design: &case.design,
+        design: DesignInput::Dense(&case.design),
         response: &case.response,
         offset: Some(&case.offset),
         treatment_columns,
@@ -552,7 +552,7 @@ fn bootstrap_standard_deviations(
         let resample_coefficients: Vec<f64> =
             fit.coefficients.iter().map(|c| c.unwrap_or(0.0)).collect();
         let input = MarginalInput {
-            design: &design,
+            design: DesignInput::Dense(&design),
             response: &response,
             offset: Some(&offset),
             treatment_columns,
@@ -726,7 +726,7 @@ fn error_cases_are_typed() {
     let covariance = DMatrix::<f64>::identity(3, 3);
     let columns = [None, Some(1)];
     let base = MarginalInput {
-        design: &design,
+        design: DesignInput::Dense(&design),
         response: &response,
         offset: None,
         treatment_columns: &columns,
@@ -747,7 +747,7 @@ fn error_cases_are_typed() {
     };
     check(
         MarginalInput {
-            design: &empty,
+            design: DesignInput::Dense(&empty),
             ..base
         },
         |e| matches!(e, MarginalError::EmptyData),
@@ -793,7 +793,7 @@ fn error_cases_are_typed() {
     bad_design[(2, 2)] = f64::NAN;
     check(
         MarginalInput {
-            design: &bad_design,
+            design: DesignInput::Dense(&bad_design),
             ..base
         },
         |e| {
@@ -905,7 +905,7 @@ fn error_cases_are_typed() {
     let wide = DMatrix::from_fn(4, 4, |i, j| if j < 3 { design[(i, j)] } else { 0.0 });
     check(
         MarginalInput {
-            design: &wide,
+            design: DesignInput::Dense(&wide),
             treatment_columns: &[None, Some(1), Some(3)],
             coefficients: &[0.1, 0.2, 0.3, 0.0],
             coefficient_covariance: Some(&DMatrix::identity(4, 4)),
@@ -953,7 +953,7 @@ fn error_cases_are_typed() {
     let aliased = DMatrix::from_fn(4, 4, |i, j| design[(i, j.min(2))]);
     check(
         MarginalInput {
-            design: &aliased,
+            design: DesignInput::Dense(&aliased),
             coefficients: &[0.1, 0.2, 0.3, 0.0],
             variance: MarginalVariance::InfluenceFunction,
             ..base

@@ -13,8 +13,81 @@
 
 use crate::data::{Column, StudyData};
 use crate::error::{Error, ErrorKind, Problem};
+use crate::models::{DesignInput, SparseRows};
 use crate::plan::{Analysis, Plan};
 use nalgebra::DMatrix;
+use std::borrow::Cow;
+
+/// Designs of more entries than this (n × p; 32 MiB as doubles) are held as rows of non-zero
+/// entries and never formed dense: at 10⁶ subjects and 50 sites a dense design is 400 MiB,
+/// its rows (an intercept, an arm, a site and a baseline value each) under 50 MiB. Smaller
+/// designs stay dense, where every engine has its fastest and longest-validated route.
+pub const DENSE_ENTRIES_AT_MOST: usize = 1 << 22;
+
+/// How a design is held (see [`DENSE_ENTRIES_AT_MOST`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Layout {
+    /// Dense up to [`DENSE_ENTRIES_AT_MOST`] entries, rows beyond.
+    BySize,
+    Dense,
+    Rows,
+}
+
+/// The n × p design matrix, dense (column-major) or as rows of non-zero entries.
+#[derive(Debug, Clone)]
+pub enum DesignMatrix {
+    Dense(DMatrix<f64>),
+    Rows(SparseRows),
+}
+
+impl DesignMatrix {
+    pub fn nrows(&self) -> usize {
+        match self {
+            DesignMatrix::Dense(matrix) => matrix.nrows(),
+            DesignMatrix::Rows(rows) => rows.nrows(),
+        }
+    }
+
+    pub fn ncols(&self) -> usize {
+        match self {
+            DesignMatrix::Dense(matrix) => matrix.ncols(),
+            DesignMatrix::Rows(rows) => rows.ncols(),
+        }
+    }
+
+    /// The design as an engine takes it.
+    pub fn input(&self) -> DesignInput<'_> {
+        match self {
+            DesignMatrix::Dense(matrix) => DesignInput::Dense(matrix),
+            DesignMatrix::Rows(rows) => DesignInput::Rows(rows),
+        }
+    }
+
+    /// The dense matrix, formed from the rows when it is held as rows (for the supportive
+    /// checks that need one; a large design then costs its dense size while they run).
+    pub fn dense(&self) -> Cow<'_, DMatrix<f64>> {
+        match self {
+            DesignMatrix::Dense(matrix) => Cow::Borrowed(matrix),
+            DesignMatrix::Rows(rows) => Cow::Owned(rows.to_dense()),
+        }
+    }
+
+    /// The entry at (`row`, `column`).
+    pub fn get(&self, row: usize, column: usize) -> f64 {
+        match self {
+            DesignMatrix::Dense(matrix) => matrix[(row, column)],
+            DesignMatrix::Rows(rows) => rows.get(row, column),
+        }
+    }
+
+    /// The sum of `column` over the rows, in row order.
+    pub fn column_sum(&self, column: usize) -> f64 {
+        match self {
+            DesignMatrix::Dense(matrix) => matrix.column(column).iter().sum::<f64>(),
+            DesignMatrix::Rows(rows) => rows.column_sum(column),
+        }
+    }
+}
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum TermKind {
@@ -55,8 +128,8 @@ pub struct PoolingOutcome {
 
 #[derive(Debug, Clone)]
 pub struct Design {
-    /// n × p, column-major.
-    pub matrix: DMatrix<f64>,
+    /// n × p.
+    pub matrix: DesignMatrix,
     /// The endpoint per analysed subject: the value (continuous, count), 1 or 0
     /// (binary: event or not), or the category index (ordinal, nominal).
     pub response: Vec<f64>,
@@ -93,8 +166,18 @@ struct FactorValues {
     codes: Vec<usize>,
 }
 
-/// Build the design of `analysis` from `data`.
+/// Build the design of `analysis` from `data`, held as its size says ([`Layout::BySize`]).
 pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Design, Error> {
+    build_with_layout(plan, analysis, data, Layout::BySize)
+}
+
+/// [`build`] with the layout chosen by the caller (tests compare the two layouts).
+pub fn build_with_layout(
+    plan: &Plan,
+    analysis: &Analysis,
+    data: &StudyData,
+    layout: Layout,
+) -> Result<Design, Error> {
     let arms = &plan.data.treatment.arms;
     let population = &plan.populations[analysis.population];
     let fail = |message: String| {
@@ -222,7 +305,16 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
             .iter()
             .map(|(_, values)| values.levels.len())
             .sum::<usize>();
-    let mut columns = ColumnStore::with_capacity(n, column_bound);
+    let as_rows = match layout {
+        Layout::BySize => n.saturating_mul(column_bound) > DENSE_ENTRIES_AT_MOST,
+        Layout::Dense => false,
+        Layout::Rows => true,
+    };
+    let mut columns = if as_rows {
+        ColumnStore::sparse(n, column_bound)
+    } else {
+        ColumnStore::with_capacity(n, column_bound)
+    };
     columns.push(std::iter::repeat_n(1.0, n));
     let mut terms = vec![Term {
         name: "(intercept)".to_string(),
@@ -354,9 +446,8 @@ pub fn build(plan: &Plan, analysis: &Analysis, data: &StudyData) -> Result<Desig
             Some(offset)
         }
     };
-    let n_columns = columns.len();
-    let matrix = DMatrix::from_vec(n, n_columns, columns.data);
-    check_covariates(analysis, &terms, &matrix, &column_names, &fail)?;
+    check_covariates(analysis, &terms, &columns, &column_names, &fail)?;
+    let matrix = columns.finish();
     let arm_of_row = analysed.iter().map(|&row| data.arms[row]).collect();
     Ok(Design {
         matrix,
@@ -461,32 +552,181 @@ fn pool(
 /// matrix, so the design is held once while it is assembled (not as columns and again as the
 /// matrix). The capacity is an upper bound on the columns; pages that are never written are
 /// never touched.
-struct ColumnStore {
-    n_rows: usize,
-    n_columns: usize,
-    data: Vec<f64>,
+/// The design's columns as they are built: column-major values, or each column's non-zero
+/// entries (a zero of either sign is not stored) for a design to be held as rows.
+enum ColumnStore {
+    Dense {
+        n_rows: usize,
+        n_columns: usize,
+        data: Vec<f64>,
+    },
+    Sparse {
+        n_rows: usize,
+        /// Per column: the rows and values of its stored entries, rows ascending.
+        columns: Vec<(Vec<u32>, Vec<f64>)>,
+    },
 }
 
 impl ColumnStore {
     fn with_capacity(n_rows: usize, columns: usize) -> ColumnStore {
-        ColumnStore {
+        ColumnStore::Dense {
             n_rows,
             n_columns: 0,
             data: Vec::with_capacity(n_rows * columns),
         }
     }
 
+    fn sparse(n_rows: usize, columns: usize) -> ColumnStore {
+        ColumnStore::Sparse {
+            n_rows,
+            columns: Vec::with_capacity(columns),
+        }
+    }
+
     fn len(&self) -> usize {
-        self.n_columns
+        match self {
+            ColumnStore::Dense { n_columns, .. } => *n_columns,
+            ColumnStore::Sparse { columns, .. } => columns.len(),
+        }
+    }
+
+    fn n_rows(&self) -> usize {
+        match self {
+            ColumnStore::Dense { n_rows, .. } | ColumnStore::Sparse { n_rows, .. } => *n_rows,
+        }
     }
 
     /// Appends one column of exactly `n_rows` values.
     fn push(&mut self, values: impl Iterator<Item = f64>) {
-        let before = self.data.len();
-        self.data.extend(values);
-        debug_assert_eq!(self.data.len() - before, self.n_rows);
-        self.n_columns += 1;
+        match self {
+            ColumnStore::Dense {
+                n_rows,
+                n_columns,
+                data,
+            } => {
+                let before = data.len();
+                data.extend(values);
+                debug_assert_eq!(data.len() - before, *n_rows);
+                *n_columns += 1;
+            }
+            ColumnStore::Sparse { columns, .. } => {
+                let mut rows = Vec::new();
+                let mut stored = Vec::new();
+                for (row, value) in values.enumerate() {
+                    if value != 0.0 {
+                        rows.push(row as u32);
+                        stored.push(value);
+                    }
+                }
+                rows.shrink_to_fit();
+                stored.shrink_to_fit();
+                columns.push((rows, stored));
+            }
+        }
     }
+
+    /// Every value of `column`, zeros included.
+    fn column_values(&self, column: usize) -> Cow<'_, [f64]> {
+        match self {
+            ColumnStore::Dense { n_rows, data, .. } => {
+                Cow::Borrowed(&data[column * n_rows..(column + 1) * n_rows])
+            }
+            ColumnStore::Sparse { n_rows, columns } => {
+                let mut values = vec![0.0; *n_rows];
+                let (rows, stored) = &columns[column];
+                for (&row, &value) in rows.iter().zip(stored) {
+                    values[row as usize] = value;
+                }
+                Cow::Owned(values)
+            }
+        }
+    }
+
+    /// The rows where `column` is non-zero, ascending.
+    fn non_zero_rows(&self, column: usize) -> Vec<usize> {
+        match self {
+            ColumnStore::Dense { n_rows, data, .. } => data[column * n_rows..(column + 1) * n_rows]
+                .iter()
+                .enumerate()
+                .filter(|(_, value)| **value != 0.0)
+                .map(|(row, _)| row)
+                .collect(),
+            ColumnStore::Sparse { columns, .. } => {
+                let (rows, stored) = &columns[column];
+                rows.iter()
+                    .zip(stored)
+                    .filter(|(_, value)| **value != 0.0)
+                    .map(|(&row, _)| row as usize)
+                    .collect()
+            }
+        }
+    }
+
+    /// The columns `selected` (ascending) as a design of their own, in this store's layout.
+    fn select(&self, selected: &[usize]) -> DesignMatrix {
+        match self {
+            ColumnStore::Dense { n_rows, data, .. } => {
+                let mut values = Vec::with_capacity(n_rows * selected.len());
+                for &column in selected {
+                    values.extend_from_slice(&data[column * n_rows..(column + 1) * n_rows]);
+                }
+                DesignMatrix::Dense(DMatrix::from_vec(*n_rows, selected.len(), values))
+            }
+            ColumnStore::Sparse { n_rows, columns } => {
+                let chosen: Vec<&(Vec<u32>, Vec<f64>)> =
+                    selected.iter().map(|&column| &columns[column]).collect();
+                DesignMatrix::Rows(transpose(*n_rows, &chosen))
+            }
+        }
+    }
+
+    fn finish(self) -> DesignMatrix {
+        match self {
+            ColumnStore::Dense {
+                n_rows,
+                n_columns,
+                data,
+            } => DesignMatrix::Dense(DMatrix::from_vec(n_rows, n_columns, data)),
+            ColumnStore::Sparse { n_rows, columns } => {
+                let chosen: Vec<&(Vec<u32>, Vec<f64>)> = columns.iter().collect();
+                DesignMatrix::Rows(transpose(n_rows, &chosen))
+            }
+        }
+    }
+}
+
+/// Rows of stored entries from columns of them (a counting sort by row; each row's entries
+/// come out in column order).
+fn transpose(n_rows: usize, columns: &[&(Vec<u32>, Vec<f64>)]) -> SparseRows {
+    let mut counts = vec![0u32; n_rows];
+    let mut total = 0;
+    for (rows, _) in columns {
+        total += rows.len();
+        for &row in rows {
+            counts[row as usize] += 1;
+        }
+    }
+    // Row starts, then the entries dropped into place column by column.
+    let mut row_starts = Vec::with_capacity(n_rows + 1);
+    let mut start = 0usize;
+    row_starts.push(0);
+    for &count in &counts {
+        start += count as usize;
+        row_starts.push(start);
+    }
+    drop(counts);
+    let mut next: Vec<usize> = row_starts[..n_rows].to_vec();
+    let mut slot_columns = vec![0u32; total];
+    let mut slot_values = vec![0.0; total];
+    for (column, (rows, values)) in columns.iter().enumerate() {
+        for (&row, &value) in rows.iter().zip(values) {
+            let slot = &mut next[row as usize];
+            slot_columns[*slot] = column as u32;
+            slot_values[*slot] = value;
+            *slot += 1;
+        }
+    }
+    SparseRows::from_parts(columns.len(), row_starts, slot_columns, slot_values)
 }
 
 fn push_indicators(
@@ -536,7 +776,7 @@ mod tests {
 fn check_covariates(
     analysis: &Analysis,
     terms: &[Term],
-    matrix: &DMatrix<f64>,
+    matrix: &ColumnStore,
     column_names: &[String],
     fail: &dyn Fn(String) -> Error,
 ) -> Result<(), Error> {
@@ -558,7 +798,7 @@ fn check_covariates(
             )));
         }
         for column in term.first_column..term.first_column + term.column_count {
-            let values = matrix.column(column);
+            let values = matrix.column_values(column);
             let first = values[0];
             if values.iter().all(|&value| value == first) {
                 return Err(fail(format!(
@@ -583,8 +823,19 @@ fn check_covariates(
             } else {
                 let mut predictors = vec![0usize];
                 predictors.extend(&strata_columns);
-                let design = matrix.select_columns(&predictors);
-                least_squares_residual_sum(&design, &response, &LeastSquaresOptions::default())
+                match matrix.select(&predictors) {
+                    DesignMatrix::Dense(design) => least_squares_residual_sum(
+                        &design,
+                        &response,
+                        &LeastSquaresOptions::default(),
+                    ),
+                    DesignMatrix::Rows(rows) => crate::models::linear::fit_least_squares_rows(
+                        &rows,
+                        &response,
+                        &LeastSquaresOptions::default(),
+                    )
+                    .map(|fit| fit.residual_sum_of_squares),
+                }
             };
             if let Ok(residual_sum_of_squares) = residual {
                 let mean = response.iter().sum::<f64>() / response.len() as f64;
@@ -614,18 +865,13 @@ fn check_covariates(
 /// Σ (value − mean of its cell)² where the cell of a row is the dummy column of
 /// `cell_columns` that is non-zero in it, or the reference level when none is:
 /// the residual sum of squares of regressing `values` on one factor.
-fn within_cell_sum_of_squares(
-    matrix: &DMatrix<f64>,
-    cell_columns: &[usize],
-    values: &[f64],
-) -> f64 {
+fn within_cell_sum_of_squares(matrix: &ColumnStore, cell_columns: &[usize], values: &[f64]) -> f64 {
     let n_rows = values.len();
+    debug_assert_eq!(n_rows, matrix.n_rows());
     let mut cells = vec![0usize; n_rows];
     for (position, &column) in cell_columns.iter().enumerate() {
-        for (row, cell) in cells.iter_mut().enumerate() {
-            if matrix[(row, column)] != 0.0 {
-                *cell = position + 1;
-            }
+        for row in matrix.non_zero_rows(column) {
+            cells[row] = position + 1;
         }
     }
     let n_cells = cell_columns.len() + 1;

@@ -80,7 +80,7 @@ pub fn analyse(
     analysis: &Analysis,
     spec: &GlmSpec,
 ) -> Result<AnalysisInference, String> {
-    let mut data = GlmData::new(&design.matrix, &design.response);
+    let mut data = GlmData::from_input(design.matrix.input(), &design.response);
     if let Some(offset) = &design.offset {
         data = data.with_offset(offset);
     }
@@ -352,7 +352,8 @@ fn likelihood_ratio_test(
     let kept: Vec<usize> = (0..design.matrix.ncols())
         .filter(|column| !treatment_columns.contains(column))
         .collect();
-    let mut reduced_data = GlmData::new(&design.matrix, data.response).with_columns(&kept);
+    let mut reduced_data =
+        GlmData::from_input(design.matrix.input(), data.response).with_columns(&kept);
     if let Some(offset) = data.offset {
         reduced_data = reduced_data.with_offset(offset);
     }
@@ -483,7 +484,7 @@ fn marginal_summary(
         .map(|value| value.unwrap_or(0.0))
         .collect();
     let input = MarginalInput {
-        design: &design.matrix,
+        design: design.matrix.input(),
         response: &design.response,
         offset: design.offset.as_deref(),
         treatment_columns: &design.treatment_columns,

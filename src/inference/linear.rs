@@ -7,24 +7,28 @@ use super::{
     AnalysisInference, ArmMean, CoefficientRow, ContrastResult, FitStatistics, JointTest, bilinear,
     contrast_vector, wald_estimate,
 };
-use crate::design::Design;
+use crate::design::{Design, DesignMatrix};
 use crate::models::linear::{
     LeastSquaresFit, LeastSquaresOptions, fit_least_squares, fit_least_squares_in_place,
+    fit_least_squares_rows,
 };
 use crate::plan::Contrast;
 use nalgebra::DMatrix;
 
-/// Fit the planned linear model to `design` and infer from it. The design's matrix serves as
-/// the factorization's workspace and is put back exactly before the fit returns (no n × p copy).
+/// Fit the planned linear model to `design` and infer from it. A dense design's matrix serves
+/// as the factorization's workspace and is put back exactly before the fit returns (no n × p
+/// copy); a design held as rows is factored in row blocks.
 pub fn analyse(
     design: &mut Design,
     analysis: &crate::plan::Analysis,
 ) -> Result<AnalysisInference, String> {
-    let fit = fit_least_squares_in_place(
-        &mut design.matrix,
-        &design.response,
-        &LeastSquaresOptions::default(),
-    )
+    let options = LeastSquaresOptions::default();
+    let fit = match &mut design.matrix {
+        DesignMatrix::Dense(matrix) => {
+            fit_least_squares_in_place(matrix, &design.response, &options)
+        }
+        DesignMatrix::Rows(rows) => fit_least_squares_rows(rows, &design.response, &options),
+    }
     .map_err(|error| error.to_string())?;
     let design = &*design;
     let mut inference = infer(design, &fit, &analysis.contrasts, analysis.confidence_level)?;
@@ -222,7 +226,7 @@ pub(crate) fn averaged_row(design: &Design, arm: usize) -> Vec<f64> {
             {
                 f64::from(u8::from(position == arm))
             } else {
-                design.matrix.column(column).iter().sum::<f64>() / n
+                design.matrix.column_sum(column) / n
             }
         })
         .collect()

@@ -108,6 +108,7 @@
 //! (2002), The American Statistician 56:29–38 (the calculus of M-estimation); Tsiatis (2006),
 //! *Semiparametric Theory and Missing Data*, ch. 3 (influence functions of M-estimators).
 
+use crate::models::DesignInput;
 #[allow(unused_imports)]
 use crate::models::portable::Portable;
 use libm::erfc;
@@ -171,8 +172,9 @@ pub enum MarginalVariance {
 /// Everything [`marginal_means`] needs: the analysed data and a fitted GLM.
 #[derive(Debug, Clone, Copy)]
 pub struct MarginalInput<'a> {
-    /// n×p design matrix of the fitted model (treatment indicators and covariates).
-    pub design: &'a DMatrix<f64>,
+    /// n×p design matrix of the fitted model (treatment indicators and covariates), dense or
+    /// as rows of non-zero entries (the results are the same either way).
+    pub design: DesignInput<'a>,
     /// Observed response per row (0/1 for binary, counts for counts); used by `Robust` only.
     pub response: &'a [f64],
     /// Offset per row (e.g. log exposure); zero when absent.
@@ -412,7 +414,7 @@ fn inverse_link(link: Link, eta: f64) -> (f64, f64) {
 /// Checks the input and returns the number of arms and the subjects per arm.
 fn validate(input: &MarginalInput) -> Result<(usize, Vec<usize>), MarginalError> {
     let design = input.design;
-    let (n_rows, n_columns) = design.shape();
+    let (n_rows, n_columns) = (design.nrows(), design.ncols());
     let n_arms = input.treatment_columns.len();
     if n_rows == 0 || n_columns == 0 || n_arms < 2 {
         return Err(MarginalError::EmptyData);
@@ -439,8 +441,9 @@ fn validate(input: &MarginalInput) -> Result<(usize, Vec<usize>), MarginalError>
         });
     }
     for column in 0..n_columns {
-        for row in 0..n_rows {
-            if !design[(row, column)].is_finite() {
+        let values = column_values(design, column);
+        for (row, value) in values.iter().enumerate() {
+            if !value.is_finite() {
                 return Err(MarginalError::NonFiniteInput {
                     what: "design",
                     row,
@@ -525,7 +528,7 @@ fn validate(input: &MarginalInput) -> Result<(usize, Vec<usize>), MarginalError>
         for (other_arm, column) in input.treatment_columns.iter().enumerate() {
             if let Some(column) = *column {
                 let expected = if other_arm == arm { 1.0 } else { 0.0 };
-                let found = design[(row, column)];
+                let found = entry(design, row, column);
                 if found != expected {
                     return Err(MarginalError::TreatmentCodingMismatch {
                         row,
@@ -554,7 +557,7 @@ fn is_positive_definite(matrix: &DMatrix<f64>) -> bool {
 pub fn marginal_means(input: &MarginalInput) -> Result<MarginalMeans, MarginalError> {
     let (n_arms, n_per_arm) = validate(input)?;
     let design = input.design;
-    let (n_rows, n_columns) = design.shape();
+    let (n_rows, n_columns) = (design.nrows(), design.ncols());
     let n = n_rows as f64;
     let is_treatment_column: Vec<bool> = (0..n_columns)
         .map(|column| input.treatment_columns.contains(&Some(column)))
@@ -567,8 +570,9 @@ pub fn marginal_means(input: &MarginalInput) -> Result<MarginalMeans, MarginalEr
     };
     for column in (0..n_columns).filter(|&column| !is_treatment_column[column]) {
         let coefficient = input.coefficients[column];
-        for (row, value) in base_predictor.iter_mut().enumerate() {
-            *value += design[(row, column)] * coefficient;
+        let values = column_values(design, column);
+        for (value, x) in base_predictor.iter_mut().zip(values.iter()) {
+            *value += x * coefficient;
         }
     }
 
@@ -602,8 +606,9 @@ pub fn marginal_means(input: &MarginalInput) -> Result<MarginalMeans, MarginalEr
                     }
                 } else {
                     let mut total = 0.0;
-                    for (row, derivative) in derivatives.iter().enumerate() {
-                        total += derivative * design[(row, column)];
+                    let values = column_values(design, column);
+                    for (derivative, x) in derivatives.iter().zip(values.iter()) {
+                        total += derivative * x;
                     }
                     total / n
                 };
@@ -775,16 +780,21 @@ fn variance_function(family: Family, mean: f64) -> Option<f64> {
 /// order as (wᵢ · xᵢₐ) · xᵢᵦ starting from zero, visiting only each row's non-zero entries: a
 /// skipped term would add ±0, so the result is bit for bit the plain triple loop's, at the
 /// cost of the squared non-zeros of a row (one site dummy of many) rather than of p.
-fn weighted_cross_totals(design: &DMatrix<f64>, weights: &[f64]) -> Vec<f64> {
+fn weighted_cross_totals(design: DesignInput, weights: &[f64]) -> Vec<f64> {
     use crate::models::glm::linalg::{BlockNonZeros, ROW_BLOCK};
-    let (n_rows, n_columns) = design.shape();
+    let (n_rows, n_columns) = (design.nrows(), design.ncols());
     let all: Vec<usize> = (0..n_columns).collect();
     let mut totals = vec![0.0; n_columns * n_columns];
     let mut non_zeros = BlockNonZeros::new(n_columns);
     let mut block_start = 0;
     while block_start < n_rows {
         let block_end = (block_start + ROW_BLOCK).min(n_rows);
-        non_zeros.gather(design.as_slice(), n_rows, &all, block_start..block_end);
+        match design {
+            DesignInput::Dense(matrix) => {
+                non_zeros.gather(matrix.as_slice(), n_rows, &all, block_start..block_end)
+            }
+            DesignInput::Rows(rows) => non_zeros.gather_stored(rows, &all, block_start..block_end),
+        }
         for row in block_start..block_end {
             let w = weights[row];
             let (positions, values) = non_zeros.row(row - block_start);
@@ -797,6 +807,31 @@ fn weighted_cross_totals(design: &DMatrix<f64>, weights: &[f64]) -> Vec<f64> {
         block_start = block_end;
     }
     totals
+}
+
+/// Every value of `column`, zeros included: the dense matrix's column in place, or scattered
+/// from the rows.
+fn column_values(design: DesignInput<'_>, column: usize) -> std::borrow::Cow<'_, [f64]> {
+    match design {
+        DesignInput::Dense(matrix) => {
+            let n_rows = matrix.nrows();
+            std::borrow::Cow::Borrowed(&matrix.as_slice()[column * n_rows..(column + 1) * n_rows])
+        }
+        DesignInput::Rows(rows) => {
+            let mut values = vec![0.0; rows.nrows()];
+            for (row, value) in values.iter_mut().enumerate() {
+                *value = rows.get(row, column);
+            }
+            std::borrow::Cow::Owned(values)
+        }
+    }
+}
+
+fn entry(design: DesignInput<'_>, row: usize, column: usize) -> f64 {
+    match design {
+        DesignInput::Dense(matrix) => matrix[(row, column)],
+        DesignInput::Rows(rows) => rows.get(row, column),
+    }
 }
 
 fn influence_function_covariance(
@@ -814,7 +849,7 @@ fn influence_function_covariance(
         });
     }
     let design = input.design;
-    let (n_rows, n_columns) = design.shape();
+    let (n_rows, n_columns) = (design.nrows(), design.ncols());
     let n_arms = means.len();
     let n = n_rows as f64;
     let shift_of_arm: Vec<f64> = input
@@ -864,7 +899,24 @@ fn influence_function_covariance(
     if solved.iter().any(|value| !value.is_finite()) {
         return Err(MarginalError::SingularInformation);
     }
-    let projected = design * &solved; // n × K: x_iᵀ G
+    // n × K: x_iᵀ G.
+    let projected = match design {
+        DesignInput::Dense(matrix) => matrix * &solved,
+        DesignInput::Rows(rows) => {
+            let mut projected = DMatrix::<f64>::zeros(n_rows, n_arms);
+            for row in 0..n_rows {
+                let (columns, values) = rows.entries(row);
+                for arm in 0..n_arms {
+                    projected[(row, arm)] = columns
+                        .iter()
+                        .zip(values)
+                        .map(|(&column, &x)| x * solved[(column as usize, arm)])
+                        .sum();
+                }
+            }
+            projected
+        }
+    };
     let mut influence = vec![0.0; n_arms];
     let mut covariance = DMatrix::<f64>::zeros(n_arms, n_arms);
     for row in 0..n_rows {

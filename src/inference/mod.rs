@@ -378,15 +378,18 @@ pub(crate) fn with_interactions(design: &Design) -> (DMatrix<f64>, usize) {
         .flat_map(|term| term.first_column..term.first_column + term.column_count)
         .collect();
     let n = design.n_rows();
-    let base = design.matrix.ncols();
+    let dense = design.matrix.dense();
+    let base = dense.ncols();
     let added = treatment.len() * strata.len();
-    let mut extended = design.matrix.clone().resize_horizontally(base + added, 0.0);
+    let mut extended = dense
+        .as_ref()
+        .clone()
+        .resize_horizontally(base + added, 0.0);
     let mut next = base;
     for &arm_column in &treatment {
         for &stratum_column in &strata {
             for row in 0..n {
-                extended[(row, next)] =
-                    design.matrix[(row, arm_column)] * design.matrix[(row, stratum_column)];
+                extended[(row, next)] = dense[(row, arm_column)] * dense[(row, stratum_column)];
             }
             next += 1;
         }

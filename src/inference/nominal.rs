@@ -38,8 +38,11 @@ pub fn analyse(
         ));
     }
     let options = MultinomialOptions::default();
-    let fit = fit_multinomial_logit(
-        &design.matrix,
+    let all_columns = crate::models::every_column(design.matrix.ncols());
+    let full_view = DesignColumns::of(design.matrix.input(), &all_columns)
+        .ok_or_else(|| "internal error: the design's columns are out of range".to_string())?;
+    let fit = fit_multinomial_logit_on(
+        full_view,
         &response,
         levels.len(),
         reference_category,
@@ -94,7 +97,7 @@ pub fn analyse(
     let kept: Vec<usize> = (0..p)
         .filter(|column| !treatment.contains(column))
         .collect();
-    let reduced_view = DesignColumns::new(&design.matrix, &kept).ok_or_else(|| {
+    let reduced_view = DesignColumns::of(design.matrix.input(), &kept).ok_or_else(|| {
         "internal error: a model column is not a column of the design".to_string()
     })?;
     match fit_multinomial_logit_on(

@@ -28,7 +28,7 @@ use nalgebra::DMatrix;
 /// category indices.
 struct Prepared<'a> {
     /// The analysis design, intercept first; the model uses its other columns.
-    design: &'a DMatrix<f64>,
+    design: crate::models::DesignInput<'a>,
     /// Design column names without the intercept.
     names: Vec<String>,
     /// Position among the model's columns (the design's without the intercept) of each arm's
@@ -130,7 +130,7 @@ fn prepare<'a>(
         .map(|column| column.map(|column| column - 1))
         .collect();
     Ok(Prepared {
-        design: &design.matrix,
+        design: design.matrix.input(),
         names,
         treatment_columns,
         response,
@@ -139,8 +139,11 @@ fn prepare<'a>(
 }
 
 /// The view of `columns` of `matrix`; they are the design's own, so a refusal is a defect.
-fn view<'a>(matrix: &'a DMatrix<f64>, columns: &'a [usize]) -> Result<DesignColumns<'a>, String> {
-    DesignColumns::new(matrix, columns)
+fn view<'a>(
+    design: crate::models::DesignInput<'a>,
+    columns: &'a [usize],
+) -> Result<DesignColumns<'a>, String> {
+    DesignColumns::of(design, columns)
         .ok_or_else(|| "internal error: a model column is not a column of the design".to_string())
 }
 
@@ -783,7 +786,7 @@ fn mantel_haenszel(design: &Design, prepared: &Prepared, scores: Option<&[f64]>)
     let mut counts = vec![0.0; n_strata * n_arms * n_categories];
     for row in 0..design.n_rows() {
         let level = (0..stratum.column_count)
-            .find(|offset| design.matrix[(row, stratum.first_column + offset)] == 1.0)
+            .find(|offset| design.matrix.get(row, stratum.first_column + offset) == 1.0)
             .map(|offset| offset + 1)
             .unwrap_or(0);
         let arm = design.arm_of_row[row];

@@ -12,56 +12,215 @@ pub mod portable;
 pub use glm::linalg::{SparseRows, SparseRowsBuilder};
 use nalgebra::DMatrix;
 
-/// Some columns of a column-major design, read in place: column `c` of the view is column
-/// `columns[c]` of the matrix. A model fitted to a view is, to the bit, the model fitted to a
-/// copy of those columns; the view only saves the copy (an n × p design at 10⁶ rows is
-/// hundreds of megabytes).
+/// A design as a model engine receives it: a dense column-major matrix, or rows of non-zero
+/// entries (how [`crate::design`] holds a large design, never forming the dense matrix).
+#[derive(Debug, Clone, Copy)]
+pub enum DesignInput<'a> {
+    Dense(&'a DMatrix<f64>),
+    Rows(&'a SparseRows),
+}
+
+impl DesignInput<'_> {
+    pub fn nrows(&self) -> usize {
+        match self {
+            DesignInput::Dense(matrix) => matrix.nrows(),
+            DesignInput::Rows(rows) => rows.nrows(),
+        }
+    }
+
+    pub fn ncols(&self) -> usize {
+        match self {
+            DesignInput::Dense(matrix) => matrix.ncols(),
+            DesignInput::Rows(rows) => rows.ncols(),
+        }
+    }
+
+    /// A dense copy of `columns` (for the supportive fits that take one).
+    pub fn select_columns(&self, columns: &[usize]) -> DMatrix<f64> {
+        match self {
+            DesignInput::Dense(matrix) => matrix.select_columns(columns),
+            DesignInput::Rows(rows) => {
+                let mut selected = DMatrix::<f64>::zeros(rows.nrows(), columns.len());
+                for (position, &column) in columns.iter().enumerate() {
+                    for row in 0..rows.nrows() {
+                        selected[(row, position)] = rows.get(row, column);
+                    }
+                }
+                selected
+            }
+        }
+    }
+}
+
+/// A design inside one fit. The main routes read the rows of non-zeros; the few rarely taken
+/// routes that read the dense matrix (a non-finite operand, Firth's correction, profile limits,
+/// the separation check) get it from [`DenseOnDemand::dense`], which forms it from the rows at
+/// most once per fit.
+pub(crate) struct DenseOnDemand<'a> {
+    input: DesignInput<'a>,
+    made: std::cell::OnceCell<DMatrix<f64>>,
+}
+
+impl<'a> DenseOnDemand<'a> {
+    pub(crate) fn new(input: DesignInput<'a>) -> DenseOnDemand<'a> {
+        DenseOnDemand {
+            input,
+            made: std::cell::OnceCell::new(),
+        }
+    }
+
+    pub(crate) fn nrows(&self) -> usize {
+        self.input.nrows()
+    }
+
+    pub(crate) fn ncols(&self) -> usize {
+        self.input.ncols()
+    }
+
+    /// The largest absolute entry of `column`.
+    pub(crate) fn column_largest_abs(&self, column: usize) -> f64 {
+        match self.input {
+            DesignInput::Dense(matrix) => matrix
+                .column(column)
+                .iter()
+                .fold(0.0_f64, |largest, x| largest.max(x.abs())),
+            DesignInput::Rows(rows) => rows.column_largest_abs(column),
+        }
+    }
+
+    /// The dense matrix: the caller's, or formed from the rows on first use.
+    pub(crate) fn dense(&self) -> &DMatrix<f64> {
+        match self.input {
+            DesignInput::Dense(matrix) => matrix,
+            DesignInput::Rows(rows) => self.made.get_or_init(|| rows.to_dense()),
+        }
+    }
+}
+
+/// Some columns of a design, read in place: column `c` of the view is column `columns[c]` of
+/// the design, which is dense (column-major) or held as rows of non-zero entries. A model fitted
+/// to a view is, to the bit, the model fitted to a dense copy of those columns; the view only
+/// saves the copy (an n × p design at 10⁶ rows is hundreds of megabytes).
 #[derive(Debug, Clone, Copy)]
 pub struct DesignColumns<'a> {
-    matrix: &'a DMatrix<f64>,
+    design: DesignInput<'a>,
     columns: &'a [usize],
+    /// Whether `columns` ascend (then a row's stored entries come in view order).
+    ascending: bool,
 }
 
 impl<'a> DesignColumns<'a> {
     /// The view of `columns` of `matrix`, or `None` when a column is out of range or listed twice.
     pub fn new(matrix: &'a DMatrix<f64>, columns: &'a [usize]) -> Option<DesignColumns<'a>> {
-        let mut seen = vec![false; matrix.ncols()];
+        DesignColumns::of(DesignInput::Dense(matrix), columns)
+    }
+
+    /// [`DesignColumns::new`] for a design held either way.
+    pub fn of(design: DesignInput<'a>, columns: &'a [usize]) -> Option<DesignColumns<'a>> {
+        let mut seen = vec![false; design.ncols()];
         for &column in columns {
-            if column >= matrix.ncols() || seen[column] {
+            if column >= design.ncols() || seen[column] {
                 return None;
             }
             seen[column] = true;
         }
-        Some(DesignColumns { matrix, columns })
+        Some(DesignColumns {
+            design,
+            columns,
+            ascending: columns.windows(2).all(|pair| pair[0] < pair[1]),
+        })
     }
 
     pub fn nrows(&self) -> usize {
-        self.matrix.nrows()
+        self.design.nrows()
     }
 
     pub fn ncols(&self) -> usize {
         self.columns.len()
     }
 
-    /// The matrix the view reads and, per view column, its column there.
-    pub fn matrix(&self) -> &'a DMatrix<f64> {
-        self.matrix
+    /// The design the view reads.
+    pub fn design(&self) -> DesignInput<'a> {
+        self.design
     }
 
-    pub fn matrix_columns(&self) -> &'a [usize] {
+    /// Per view column, its column in the design.
+    pub fn design_columns(&self) -> &'a [usize] {
         self.columns
     }
 
-    /// Column `column` of the view, contiguous.
-    pub fn column(&self, column: usize) -> &'a [f64] {
-        let n_rows = self.matrix.nrows();
-        let start = self.columns[column] * n_rows;
-        &self.matrix.as_slice()[start..start + n_rows]
+    /// Column `column` of the view, contiguous: in place when the design is dense, otherwise
+    /// scattered from the rows.
+    pub fn column(&self, column: usize) -> std::borrow::Cow<'a, [f64]> {
+        match self.design {
+            DesignInput::Dense(matrix) => {
+                let n_rows = matrix.nrows();
+                let start = self.columns[column] * n_rows;
+                std::borrow::Cow::Borrowed(&matrix.as_slice()[start..start + n_rows])
+            }
+            DesignInput::Rows(_) => {
+                let mut values = vec![0.0; self.nrows()];
+                self.block_into(column, 0..self.nrows(), &mut values);
+                std::borrow::Cow::Owned(values)
+            }
+        }
+    }
+
+    /// Rows `rows` of view column `column` into `values` (of the same length), zeros included.
+    pub fn block_into(&self, column: usize, rows: std::ops::Range<usize>, values: &mut [f64]) {
+        let design_column = self.columns[column];
+        match self.design {
+            DesignInput::Dense(matrix) => {
+                let n_rows = matrix.nrows();
+                let start = design_column * n_rows;
+                values.copy_from_slice(&matrix.as_slice()[start + rows.start..start + rows.end]);
+            }
+            DesignInput::Rows(stored) => {
+                for (value, row) in values.iter_mut().zip(rows) {
+                    *value = stored.get(row, design_column);
+                }
+            }
+        }
     }
 
     /// The entry at `row` of view column `column`.
     pub fn get(&self, row: usize, column: usize) -> f64 {
-        self.matrix[(row, self.columns[column])]
+        match self.design {
+            DesignInput::Dense(matrix) => matrix[(row, self.columns[column])],
+            DesignInput::Rows(stored) => stored.get(row, self.columns[column]),
+        }
+    }
+
+    /// The non-zero entries of rows `block` over the view columns `selected` (positions index
+    /// `selected`), each row's in the order of `selected`, as
+    /// [`glm::linalg::BlockNonZeros::gather`] finds them in a dense design.
+    pub(crate) fn gather(
+        &self,
+        non_zeros: &mut glm::linalg::BlockNonZeros,
+        selected: &[usize],
+        block: std::ops::Range<usize>,
+    ) {
+        match self.design {
+            DesignInput::Dense(matrix) => {
+                let in_matrix: Vec<usize> = selected
+                    .iter()
+                    .map(|&column| self.columns[column])
+                    .collect();
+                non_zeros.gather(matrix.as_slice(), matrix.nrows(), &in_matrix, block);
+            }
+            DesignInput::Rows(stored) => {
+                let mut position_of = vec![usize::MAX; stored.ncols()];
+                for (position, &column) in selected.iter().enumerate() {
+                    position_of[self.columns[column]] = position;
+                }
+                let length = block.len();
+                non_zeros.gather_stored(stored, &position_of, block);
+                // A dense gather lists a row's entries in the order of `selected`.
+                if !(self.ascending && selected.windows(2).all(|pair| pair[0] < pair[1])) {
+                    non_zeros.sort_rows(length);
+                }
+            }
+        }
     }
 }
 

@@ -162,12 +162,21 @@ pub fn fit_multinomial_logit_on(
     // Aliasing on the uncentred weighted cross-product: the design carries its own intercept.
     // One blocked pass over the rows, visiting only each row's non-zeros when the design is
     // mostly indicators.
-    let (cross, _) = crate::models::glm::linalg::weighted_cross_product(
-        design.matrix(),
-        design.matrix_columns(),
-        &prepared.weights,
-        None,
-    );
+    let (cross, _) = match design.design() {
+        super::DesignInput::Dense(matrix) => crate::models::glm::linalg::weighted_cross_product(
+            matrix,
+            design.design_columns(),
+            &prepared.weights,
+            None,
+        ),
+        rows => crate::models::glm::linalg::weighted_cross_product_from(
+            &super::DenseOnDemand::new(rows),
+            rows_of(rows),
+            design.design_columns(),
+            &prepared.weights,
+            None,
+        ),
+    };
     let aliased = sweep_for_aliasing(cross);
     if !aliased.is_empty() {
         return Ok(not_estimated(StopReason::SingularDesign {
@@ -376,8 +385,7 @@ impl Problem<'_> {
             workspace.hessian.iter_mut().for_each(|v| *v = 0.0);
         }
         let mut log_likelihood = crate::models::CompensatedSum::default();
-        let data = self.design.matrix().as_slice();
-        let columns = self.design.matrix_columns();
+        let every = super::every_column(self.n_columns);
         let mut block_start = 0;
         while block_start < self.n_rows {
             let block_end = (block_start + ROW_BLOCK).min(self.n_rows);
@@ -385,9 +393,8 @@ impl Problem<'_> {
             // linear predictor, the gradient and the Hessian, which leaves every sum unchanged
             // bit for bit, and a row of treatment and site dummies has few non-zeros. They are
             // gathered a block of rows at a time, column by column.
-            workspace
-                .non_zeros
-                .gather(data, self.n_rows, columns, block_start..block_end);
+            self.design
+                .gather(&mut workspace.non_zeros, &every, block_start..block_end);
             for row in block_start..block_end {
                 let weight = self.weights[row];
                 if weight == 0.0 {
@@ -459,6 +466,14 @@ impl Problem<'_> {
         }
         let log_likelihood = log_likelihood.value();
         log_likelihood.is_finite().then_some(log_likelihood)
+    }
+}
+
+/// The stored rows of a design held as rows.
+fn rows_of(design: super::DesignInput<'_>) -> Option<&crate::models::SparseRows> {
+    match design {
+        super::DesignInput::Rows(rows) => Some(rows),
+        super::DesignInput::Dense(_) => None,
     }
 }
 

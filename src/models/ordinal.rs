@@ -929,12 +929,14 @@ pub(crate) fn aliased_columns_with_implicit_intercept(
     let mut centred = vec![0.0; block_rows * n_columns];
     let mut weighted = vec![0.0; block_rows * n_columns];
     let mut cross = DMatrix::<f64>::zeros(n_columns, n_columns);
+    let mut block_values = vec![0.0; block_rows];
     let mut start = 0;
     while start < n_rows {
         let end = (start + block_rows).min(n_rows);
         let length = end - start;
         for c in 0..n_columns {
-            let values = &column(c)[start..end];
+            let values = &mut block_values[..length];
+            design.block_into(c, start..end, values);
             let slot = c * block_rows;
             for (i, (&x, &w)) in values.iter().zip(&weights[start..end]).enumerate() {
                 let value = x - means[c];
@@ -1142,19 +1144,12 @@ impl Problem<'_> {
         let mut log_likelihood = crate::models::CompensatedSum::default();
         // Local layout: [upper block (theta_j, gamma_j)] [lower block] [the row's non-zero
         // common coefficients, in column order].
-        let data = self.design.matrix().as_slice();
-        let common_in_matrix: Vec<usize> = self
-            .common_columns
-            .iter()
-            .map(|&column| self.design.matrix_columns()[column])
-            .collect();
         let mut block_start = 0;
         while block_start < self.n_rows {
             let block_end = (block_start + ROW_BLOCK).min(self.n_rows);
-            workspace.non_zeros.gather(
-                data,
-                self.n_rows,
-                &common_in_matrix,
+            self.design.gather(
+                &mut workspace.non_zeros,
+                &self.common_columns,
                 block_start..block_end,
             );
             for row in block_start..block_end {

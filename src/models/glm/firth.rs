@@ -84,7 +84,7 @@ fn evaluate(
 /// The modified score U* at a point (one pass over rows; one p-vector of scratch).
 fn modified_score(problem: &Problem, active: &[usize], point: &PenalisedPoint) -> DVector<f64> {
     let n_rows = problem.response.len();
-    let data = problem.design.as_slice();
+    let data = problem.design.dense().as_slice();
     let size = active.len();
     let mut row_values = vec![0.0; size];
     let mut work = vec![0.0; size];

@@ -31,7 +31,7 @@ const BOUNDARY_PROBABILITY: f64 = 1e-8;
 
 /// Problem data shared by every IRLS call on one dataset.
 pub(crate) struct Problem<'a> {
-    pub(crate) design: &'a DMatrix<f64>,
+    pub(crate) design: &'a crate::models::DenseOnDemand<'a>,
     /// The design's non-zeros by row, when it is sparse (built once per fit); must describe
     /// `design` (the cross-product checks the shape and otherwise ignores it).
     pub(crate) sparse_rows: Option<&'a SparseRows>,
@@ -543,7 +543,6 @@ pub(crate) fn separation_columns(
         }
     }
     let change = &coefficients - &outcome.coefficients;
-    let data = problem.design.as_slice();
     let mut largest_eta_change: f64 = 0.0;
     for ((eta_after, eta_before), &weight) in linear_predictor
         .iter()
@@ -559,8 +558,7 @@ pub(crate) fn separation_columns(
     }
     let mut columns = Vec::new();
     for (a, &column) in active.iter().enumerate() {
-        let column_values = &data[column * n_rows..(column + 1) * n_rows];
-        let largest_x = column_values.iter().fold(0.0_f64, |m, x| m.max(x.abs()));
+        let largest_x = problem.design.column_largest_abs(column);
         if change[a].abs() * largest_x >= 0.1 * largest_eta_change {
             columns.push(column);
         }

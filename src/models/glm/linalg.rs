@@ -10,6 +10,7 @@
 
 #[allow(unused_imports)]
 use crate::models::portable::Portable;
+use crate::models::{DenseOnDemand, DesignInput};
 use nalgebra::{DMatrix, DVector};
 
 /// Rows per block in the cross-product pass: long enough for contiguous inner loops over a
@@ -27,7 +28,8 @@ pub(crate) fn weighted_cross_product(
     let n_rows = design.nrows();
     let data = design.as_slice();
     if is_sparse(data, n_rows, active) {
-        sparse_weighted_cross_product(design, None, active, weights, right_hand_side)
+        let design = DenseOnDemand::new(DesignInput::Dense(design));
+        sparse_weighted_cross_product(&design, None, active, weights, right_hand_side)
     } else {
         dense_weighted_cross_product(design, active, weights, right_hand_side)
     }
@@ -151,7 +153,7 @@ impl BlockNonZeros {
 
     /// Gathers rows `block` from stored sparse rows; `position_of` maps a design column to
     /// its position (`usize::MAX` for a column left out).
-    fn gather_stored(
+    pub(crate) fn gather_stored(
         &mut self,
         rows: &SparseRows,
         position_of: &[usize],
@@ -163,6 +165,25 @@ impl BlockNonZeros {
                 let position = position_of[rows.columns[entry] as usize];
                 if position != usize::MAX {
                     self.push(offset, position, rows.values[entry]);
+                }
+            }
+        }
+    }
+
+    /// Orders each of the first `rows` rows' entries by position (a gather from stored rows
+    /// lists them in design-column order, which differs when the columns do not ascend).
+    pub(crate) fn sort_rows(&mut self, rows: usize) {
+        for offset in 0..rows {
+            let start = offset * self.width;
+            let count = self.counts[offset];
+            if count > 1 {
+                let mut entries: Vec<(usize, f64)> = (start..start + count)
+                    .map(|index| (self.positions[index], self.values[index]))
+                    .collect();
+                entries.sort_by_key(|entry| entry.0);
+                for (k, (position, value)) in entries.into_iter().enumerate() {
+                    self.positions[start + k] = position;
+                    self.values[start + k] = value;
                 }
             }
         }
@@ -188,7 +209,7 @@ impl BlockNonZeros {
 /// non-zeros of a row instead of scanning all p columns for them. A large design is built in
 /// this form from the start and never held dense (see [`crate::design`]).
 ///
-/// An entry that is `+0.0` is not stored; `-0.0` and every other value are.
+/// A zero entry (of either sign) is not stored.
 #[derive(Debug, Clone, PartialEq)]
 pub struct SparseRows {
     n_rows: usize,
@@ -254,8 +275,7 @@ impl SparseRows {
 }
 
 impl SparseRows {
-    /// Every column of `design`, however dense, storing each entry that is not `+0.0`
-    /// (so that `-0.0` survives a round trip through [`SparseRows::to_dense`]).
+    /// Every column of `design`, however dense, storing each entry that is not zero.
     pub fn from_dense(design: &DMatrix<f64>) -> Option<SparseRows> {
         let (n_rows, n_columns) = design.shape();
         if n_columns > u32::MAX as usize {
@@ -266,13 +286,34 @@ impl SparseRows {
         for row in 0..n_rows {
             for column in 0..n_columns {
                 let value = data[column * n_rows + row];
-                if value != 0.0 || value.is_sign_negative() {
+                if value != 0.0 {
                     builder.push(column, value);
                 }
             }
             builder.end_row();
         }
         Some(builder.finish())
+    }
+
+    /// Rows from their parts: `row_starts` (n + 1 offsets, from 0, non-decreasing) into
+    /// `columns` (ascending within each row, each below `n_columns`) and `values`.
+    pub(crate) fn from_parts(
+        n_columns: usize,
+        row_starts: Vec<usize>,
+        columns: Vec<u32>,
+        values: Vec<f64>,
+    ) -> SparseRows {
+        debug_assert_eq!(row_starts.first(), Some(&0));
+        debug_assert_eq!(row_starts.last(), Some(&columns.len()));
+        debug_assert_eq!(columns.len(), values.len());
+        SparseRows {
+            n_rows: row_starts.len() - 1,
+            n_columns,
+            held: vec![true; n_columns],
+            row_starts,
+            columns,
+            values,
+        }
     }
 
     pub fn nrows(&self) -> usize {
@@ -305,6 +346,18 @@ impl SparseRows {
         dense
     }
 
+    /// The largest absolute stored entry of `column` (0 when none is stored).
+    pub fn column_largest_abs(&self, column: usize) -> f64 {
+        let mut largest = 0.0_f64;
+        for row in 0..self.n_rows {
+            let (columns, values) = self.entries(row);
+            if let Ok(index) = columns.binary_search(&(column as u32)) {
+                largest = largest.max(values[index].abs());
+            }
+        }
+        largest
+    }
+
     /// Sum of column `column` over the rows, in row order.
     pub fn column_sum(&self, column: usize) -> f64 {
         let mut sum = 0.0;
@@ -333,7 +386,7 @@ impl SparseRows {
     }
 
     /// Whether these are the rows of `design` and hold every one of the `active` columns.
-    fn covers(&self, design: &DMatrix<f64>, active: &[usize]) -> bool {
+    fn covers(&self, design: &DenseOnDemand, active: &[usize]) -> bool {
         self.n_rows == design.nrows()
             && self.n_columns == design.ncols()
             && active.iter().all(|&column| self.held[column])
@@ -407,7 +460,7 @@ fn positions_in(active: &[usize], n_columns: usize) -> Vec<usize> {
 
 /// [`weighted_cross_product`], reading the non-zeros from `rows` when the fit built them.
 pub(crate) fn weighted_cross_product_from(
-    design: &DMatrix<f64>,
+    design: &DenseOnDemand,
     rows: Option<&SparseRows>,
     active: &[usize],
     weights: &[f64],
@@ -417,7 +470,7 @@ pub(crate) fn weighted_cross_product_from(
         Some(rows) => {
             sparse_weighted_cross_product(design, Some(rows), active, weights, right_hand_side)
         }
-        None => weighted_cross_product(design, active, weights, right_hand_side),
+        None => weighted_cross_product(design.dense(), active, weights, right_hand_side),
     }
 }
 
@@ -446,7 +499,7 @@ fn is_sparse(data: &[f64], n_rows: usize, active: &[usize]) -> bool {
 /// non-zero entries of each row are visited: the cost per row is the square of its
 /// non-zeros, not of p. Workspace is O(p²), independent of the number of rows.
 fn sparse_weighted_cross_product(
-    design: &DMatrix<f64>,
+    design: &DenseOnDemand,
     rows: Option<&SparseRows>,
     active: &[usize],
     weights: &[f64],
@@ -460,7 +513,6 @@ fn sparse_weighted_cross_product(
     let position_of = positions_in(active, design.ncols());
     let n_rows = design.nrows();
     let n_active = active.len();
-    let data = design.as_slice();
     let mut cross = DMatrix::<f64>::zeros(n_active, n_active);
     let mut vector = DVector::<f64>::zeros(n_active);
     // Block partial sums, row-major upper triangle (a ≤ b).
@@ -472,7 +524,12 @@ fn sparse_weighted_cross_product(
         let block_end = (block_start + ROW_BLOCK).min(n_rows);
         match rows {
             Some(rows) => non_zeros.gather_stored(rows, &position_of, block_start..block_end),
-            None => non_zeros.gather(data, n_rows, active, block_start..block_end),
+            None => non_zeros.gather(
+                design.dense().as_slice(),
+                n_rows,
+                active,
+                block_start..block_end,
+            ),
         }
         for row in block_start..block_end {
             let (positions, values) = non_zeros.row(row - block_start);
@@ -511,7 +568,7 @@ fn sparse_weighted_cross_product(
 /// non-zero terms may differ in the sign of its zero). A non-finite entry of `vector` takes the
 /// dense route, where 0 · NaN keeps the NaN.
 pub(crate) fn transpose_multiply(
-    design: &DMatrix<f64>,
+    design: &DenseOnDemand,
     rows: Option<&SparseRows>,
     active: &[usize],
     vector: &[f64],
@@ -534,7 +591,7 @@ pub(crate) fn transpose_multiply(
         }
         return DVector::from_vec(totals);
     }
-    let data = design.as_slice();
+    let data = design.dense().as_slice();
     DVector::from_iterator(
         active.len(),
         active.iter().map(|&column| {
@@ -552,7 +609,7 @@ pub(crate) fn transpose_multiply(
 /// added in the same column order with its zeros skipped (a zero term would add ±0, so the
 /// values agree with the dense route). Non-finite coefficients take the dense route.
 pub(crate) fn linear_predictor_into(
-    design: &DMatrix<f64>,
+    design: &DenseOnDemand,
     rows: Option<&SparseRows>,
     active: &[usize],
     coefficients: &DVector<f64>,
@@ -583,7 +640,7 @@ pub(crate) fn linear_predictor_into(
         }
         return;
     }
-    let data = design.as_slice();
+    let data = design.dense().as_slice();
     linear_predictor.copy_from_slice(offset);
     for (a, &column) in active.iter().enumerate() {
         let beta = coefficients[a];
@@ -756,14 +813,16 @@ mod tests {
         let active: Vec<usize> = vec![0, 1, 2, 3, 5, 6, 7, 8, 9, 10, 11];
         assert!(is_sparse(design.as_slice(), n_rows, &active));
         let dense = dense_weighted_cross_product(&design, &active, &weights, Some(&response));
+        let matrix = design.clone();
+        let design = DenseOnDemand::new(DesignInput::Dense(&matrix));
         let sparse =
             sparse_weighted_cross_product(&design, None, &active, &weights, Some(&response));
         let every: Vec<usize> = (0..design.ncols()).collect();
-        let rows = SparseRows::of(&design, &every).expect("a design of dummies is sparse");
+        let rows = SparseRows::of(&matrix, &every).expect("a design of dummies is sparse");
         let stored =
             weighted_cross_product_from(&design, Some(&rows), &active, &weights, Some(&response));
         // Rows stored for the active columns only (a fit on a column subset).
-        let rows_of_active = SparseRows::of(&design, &active).expect("still sparse");
+        let rows_of_active = SparseRows::of(&matrix, &active).expect("still sparse");
         let stored_active = weighted_cross_product_from(
             &design,
             Some(&rows_of_active),

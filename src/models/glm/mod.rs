@@ -125,7 +125,7 @@ impl GlmOptions {
 /// The data of a fit: design, response and the optional offset and prior weights.
 #[derive(Debug, Clone, Copy)]
 pub struct GlmData<'a> {
-    pub design: &'a DMatrix<f64>,
+    pub design: crate::models::DesignInput<'a>,
     pub response: &'a [f64],
     /// Added to the linear predictor (e.g. log exposure); zero when absent.
     pub offset: Option<&'a [f64]>,
@@ -140,6 +140,17 @@ pub struct GlmData<'a> {
 
 impl<'a> GlmData<'a> {
     pub fn new(design: &'a DMatrix<f64>, response: &'a [f64]) -> GlmData<'a> {
+        GlmData {
+            design: crate::models::DesignInput::Dense(design),
+            response,
+            offset: None,
+            prior_weights: None,
+            columns: None,
+        }
+    }
+    /// The data of a design held either way; held as rows (which must hold every column), the
+    /// fit is, to the bit, the fit of the same design held dense.
+    pub fn from_input(design: crate::models::DesignInput<'a>, response: &'a [f64]) -> GlmData<'a> {
         GlmData {
             design,
             response,
@@ -320,10 +331,12 @@ const ALIASING_TOLERANCE: f64 = 1e-11;
 
 /// Checked inputs with defaults filled in.
 pub(crate) struct PreparedData<'a> {
-    pub(crate) design: &'a DMatrix<f64>,
+    pub(crate) design: crate::models::DenseOnDemand<'a>,
     /// The design columns of the model, ascending (all of them unless the data named a subset).
     pub(crate) columns: Vec<usize>,
-    pub(crate) sparse_rows: Option<SparseRows>,
+    /// The design's non-zeros by row: the caller's rows, or built here when a dense design is
+    /// sparse enough to gain from them.
+    pub(crate) sparse_rows: Option<std::borrow::Cow<'a, SparseRows>>,
     pub(crate) response: &'a [f64],
     pub(crate) offset: Vec<f64>,
     pub(crate) weights: Vec<f64>,
@@ -332,8 +345,8 @@ pub(crate) struct PreparedData<'a> {
 impl PreparedData<'_> {
     pub(crate) fn problem(&self) -> Problem<'_> {
         Problem {
-            design: self.design,
-            sparse_rows: self.sparse_rows.as_ref(),
+            design: &self.design,
+            sparse_rows: self.sparse_rows.as_deref(),
             response: self.response,
             weights: &self.weights,
             offset: &self.offset,
@@ -392,7 +405,7 @@ pub(crate) fn prepare<'a>(
 ) -> Result<PreparedData<'a>, GlmError> {
     check_options(options)?;
     let design = data.design;
-    let (n_rows, n_columns) = design.shape();
+    let (n_rows, n_columns) = (design.nrows(), design.ncols());
     if n_rows == 0 || n_columns == 0 {
         return Err(GlmError::EmptyData);
     }
@@ -425,16 +438,40 @@ pub(crate) fn prepare<'a>(
         }
         None => (0..n_columns).collect(),
     };
-    for &column in &columns {
-        for row in 0..n_rows {
-            if !design[(row, column)].is_finite() {
-                return Err(GlmError::NonFiniteInput {
-                    what: "design",
-                    row,
-                    column,
-                });
+    // The first non-finite entry in the order column, then row.
+    let non_finite = match design {
+        crate::models::DesignInput::Dense(matrix) => columns.iter().find_map(|&column| {
+            (0..n_rows)
+                .find(|&row| !matrix[(row, column)].is_finite())
+                .map(|row| (column, row))
+        }),
+        crate::models::DesignInput::Rows(rows) => {
+            let mut model_column = vec![false; n_columns];
+            for &column in &columns {
+                model_column[column] = true;
             }
+            let mut first: Option<(usize, usize)> = None;
+            for row in 0..n_rows {
+                let (stored, values) = rows.entries(row);
+                for (&column, value) in stored.iter().zip(values) {
+                    let column = column as usize;
+                    if model_column[column]
+                        && !value.is_finite()
+                        && first.is_none_or(|(c, _)| column < c)
+                    {
+                        first = Some((column, row));
+                    }
+                }
+            }
+            first
         }
+    };
+    if let Some((column, row)) = non_finite {
+        return Err(GlmError::NonFiniteInput {
+            what: "design",
+            row,
+            column,
+        });
     }
     let offset = match data.offset {
         Some(values) => {
@@ -496,9 +533,15 @@ pub(crate) fn prepare<'a>(
             });
         }
     }
+    let sparse_rows = match design {
+        crate::models::DesignInput::Dense(matrix) => {
+            SparseRows::of(matrix, &columns).map(std::borrow::Cow::Owned)
+        }
+        crate::models::DesignInput::Rows(rows) => Some(std::borrow::Cow::Borrowed(rows)),
+    };
     Ok(PreparedData {
-        design,
-        sparse_rows: SparseRows::of(design, &columns),
+        design: crate::models::DenseOnDemand::new(design),
+        sparse_rows,
         columns,
         response: data.response,
         offset,
@@ -510,8 +553,8 @@ pub(crate) fn prepare<'a>(
 pub(crate) fn estimable_columns(prepared: &PreparedData) -> (Vec<usize>, Vec<usize>) {
     let all = &prepared.columns;
     let (cross, _) = weighted_cross_product_from(
-        prepared.design,
-        prepared.sparse_rows.as_ref(),
+        &prepared.design,
+        prepared.sparse_rows.as_deref(),
         all,
         &prepared.weights,
         None,
@@ -714,6 +757,7 @@ fn null_deviance(kernel: &Kernel, prepared: &PreparedData, options: &GlmOptions)
     let problem = prepared.problem();
     if options.has_intercept {
         let ones = DMatrix::<f64>::from_element(prepared.design.nrows(), 1, 1.0);
+        let ones = crate::models::DenseOnDemand::new(crate::models::DesignInput::Dense(&ones));
         let intercept_problem = Problem {
             design: &ones,
             sparse_rows: None,
@@ -842,8 +886,8 @@ fn assemble(
                 })
                 .collect();
             let (meat, _) = weighted_cross_product_from(
-                prepared.design,
-                prepared.sparse_rows.as_ref(),
+                &prepared.design,
+                prepared.sparse_rows.as_deref(),
                 active,
                 &squared_scores,
                 None,

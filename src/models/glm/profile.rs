@@ -95,7 +95,7 @@ pub fn profile_interval(
         response: prepared.response,
         weights: &prepared.weights,
         base_offset: &prepared.offset,
-        design: prepared.design,
+        design: &prepared.design,
         coefficient: prepared.columns[coefficient],
         others,
         warm_start: fit.linear_predictors.clone(),
@@ -120,7 +120,7 @@ struct Profiler<'a> {
     response: &'a [f64],
     weights: &'a [f64],
     base_offset: &'a [f64],
-    design: &'a nalgebra::DMatrix<f64>,
+    design: &'a crate::models::DenseOnDemand<'a>,
     coefficient: usize,
     others: Vec<usize>,
     warm_start: Vec<f64>,
@@ -135,8 +135,8 @@ impl Profiler<'_> {
     fn objective(&mut self, value: f64) -> Result<f64, GlmError> {
         self.evaluations += 1;
         let n_rows = self.response.len();
-        let column =
-            &self.design.as_slice()[self.coefficient * n_rows..(self.coefficient + 1) * n_rows];
+        let column = &self.design.dense().as_slice()
+            [self.coefficient * n_rows..(self.coefficient + 1) * n_rows];
         let offset: Vec<f64> = self
             .base_offset
             .iter()
