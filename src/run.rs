@@ -159,7 +159,7 @@ pub fn load_inputs(plan_path: &Path, mode: Mode) -> Result<Inputs, Error> {
         }
         Mode::DryRun { seed } => (None, data::dummy_allocation(&plan.plan, &subjects, seed)),
     };
-    let study_data = data::assemble(&plan.plan, &subjects, &allocation)?;
+    let study_data = data::assemble(&plan.plan, &subjects, allocation)?;
     Ok(Inputs {
         plan,
         lock,

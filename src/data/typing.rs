@@ -34,7 +34,8 @@ impl Column {
 #[derive(Debug, Clone, PartialEq)]
 pub struct SubjectIds {
     text: String,
-    ends: Vec<usize>,
+    /// End offset of each key in `text` (data files are at most 2 GiB, so `u32` holds any).
+    ends: Vec<u32>,
 }
 
 impl SubjectIds {
@@ -45,8 +46,11 @@ impl SubjectIds {
         };
         for key in keys {
             ids.text.push_str(key);
-            ids.ends.push(ids.text.len());
+            ids.ends.push(ids.text.len() as u32);
         }
+        // Held for the whole run: no spare capacity from the buffers' doubling.
+        ids.text.shrink_to_fit();
+        ids.ends.shrink_to_fit();
         ids
     }
 
@@ -60,8 +64,12 @@ impl SubjectIds {
 
     /// The key of subject `row`.
     pub fn get(&self, row: usize) -> &str {
-        let start = if row == 0 { 0 } else { self.ends[row - 1] };
-        &self.text[start..self.ends[row]]
+        let start = if row == 0 {
+            0
+        } else {
+            self.ends[row - 1] as usize
+        };
+        &self.text[start..self.ends[row] as usize]
     }
 }
 
@@ -203,7 +211,7 @@ impl Collector {
 
 /// Type every declared variable from `subjects`, the arm from `allocation`, and
 /// join the two on the plan's key.
-pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<StudyData, Error> {
+pub fn assemble(plan: &Plan, subjects: &Table, allocation: Table) -> Result<StudyData, Error> {
     let key = &plan.data.key;
     let treatment = &plan.data.treatment;
     let mut collector = Collector {
@@ -213,13 +221,13 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
 
     let subject_key = require_column(subjects, key, "the subject key (data.key)", &mut collector);
     let allocation_key = require_column(
-        allocation,
+        &allocation,
         key,
         "the subject key (data.key)",
         &mut collector,
     );
     let arm_column = require_column(
-        allocation,
+        &allocation,
         &treatment.column,
         "the treatment column (data.treatment.column)",
         &mut collector,
@@ -249,103 +257,125 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
         ));
     };
 
-    let (subject_rows, subject_index) = unique_keys(subjects, subject_key, &mut collector);
-    let (allocation_rows, allocation_index) =
-        unique_keys(allocation, allocation_key, &mut collector);
-    collector.finish()?;
-    let mut collector = Collector {
-        problems: Vec::new(),
-        suppressed: 0,
+    // The join, in a block of its own so that its indexes are freed before the columns are
+    // typed (at 10⁶ subjects they are tens of megabytes).
+    // Problems of the join and of the values are reported together.
+    let (matched_rows, arms, only_in_subjects, only_in_allocation, mut collector) = {
+        let (subject_rows, subject_index) = unique_keys(subjects, subject_key, &mut collector);
+        let (allocation_rows, allocation_index) =
+            unique_keys(&allocation, allocation_key, &mut collector);
+        collector.finish()?;
+        let mut collector = Collector {
+            problems: Vec::new(),
+            suppressed: 0,
+        };
+
+        // Arms of every allocation row, checked against the plan's levels (`NO_ARM` when
+        // not one of them). The key indexes are only looked up, never iterated, so their
+        // order cannot reach any output.
+        let mut arm_of_allocation_row: Vec<u32> = vec![NO_ARM; allocation.n_rows()];
+        for (row, slot) in arm_of_allocation_row.iter_mut().enumerate() {
+            let code = allocation.cell(row, arm_column).trim();
+            match treatment.arms.iter().position(|arm| arm.code == code) {
+                Some(arm) => {
+                    *slot = arm as u32;
+                }
+                None => {
+                    let levels: Vec<&str> =
+                        treatment.arms.iter().map(|arm| arm.code.as_str()).collect();
+                    collector.push(
+                        Problem::new(
+                            ErrorKind::DataValue,
+                            format!(
+                                "treatment \"{code}\" is not one of the planned arms ({})",
+                                levels.join(", ")
+                            ),
+                        )
+                        .at(allocation.cell_location(row, arm_column)),
+                    );
+                }
+            }
+        }
+
+        // Per subject (in file order): the arm of its allocation row, if it has one with a
+        // planned arm.
+        let key_of = |table: &Table, column: usize, row: u32| -> String {
+            table.cell(row as usize, column).trim().to_string()
+        };
+        let arm_of_subject: Vec<u32> = subject_rows
+            .iter()
+            .map(|&row| {
+                let key = subjects.cell(row as usize, subject_key).trim();
+                allocation_index
+                    .get(&allocation, allocation_key, key)
+                    .map_or(NO_ARM, |row| arm_of_allocation_row[row])
+            })
+            .collect();
+        let only_in_subjects: Vec<String> = subject_rows
+            .iter()
+            .zip(&arm_of_subject)
+            .filter(|(_, arm)| **arm == NO_ARM)
+            .map(|(&row, _)| key_of(subjects, subject_key, row))
+            .collect();
+        let only_in_allocation: Vec<String> = allocation_rows
+            .iter()
+            .filter(|&&row| {
+                let key = allocation.cell(row as usize, allocation_key).trim();
+                subject_index.get(subjects, subject_key, key).is_none()
+            })
+            .map(|&row| key_of(&allocation, allocation_key, row))
+            .collect();
+        // A subject whose arm was rejected above would also count as unmatched;
+        // saying so twice would bury the real problem.
+        let arms_rejected = !collector.problems.is_empty();
+        if plan.data.unmatched == UnmatchedRule::Error
+            && !arms_rejected
+            && (!only_in_subjects.is_empty() || !only_in_allocation.is_empty())
+        {
+            let sample =
+                |ids: &[String]| ids.iter().take(5).cloned().collect::<Vec<_>>().join(", ");
+            let mut parts = Vec::new();
+            if !only_in_subjects.is_empty() {
+                parts.push(format!(
+                    "{} subject(s) in {} have no allocation (first: {})",
+                    only_in_subjects.len(),
+                    subjects.file,
+                    sample(&only_in_subjects)
+                ));
+            }
+            if !only_in_allocation.is_empty() {
+                parts.push(format!(
+                    "{} subject(s) in {} are missing from {} (first: {})",
+                    only_in_allocation.len(),
+                    allocation.file,
+                    subjects.file,
+                    sample(&only_in_allocation)
+                ));
+            }
+            collector.push(
+                Problem::new(ErrorKind::DataJoin, parts.join("; "))
+                    .at(Location::file(subjects.file.clone()))
+                    .with_hint(
+                        "set data.unmatched-subjects: exclude to leave them out and report them",
+                    ),
+            );
+        }
+        let (matched_rows, arms): (Vec<usize>, Vec<usize>) = subject_rows
+            .iter()
+            .zip(&arm_of_subject)
+            .filter(|(_, arm)| **arm != NO_ARM)
+            .map(|(&row, &arm)| (row as usize, arm as usize))
+            .unzip();
+        (
+            matched_rows,
+            arms,
+            only_in_subjects,
+            only_in_allocation,
+            collector,
+        )
     };
-
-    // Arms of every allocation row, checked against the plan's levels. The key
-    // indexes are hash maps that are only looked up, never iterated, so their
-    // order cannot reach any output.
-    let mut arm_of_allocation_row: Vec<Option<usize>> = vec![None; allocation.n_rows()];
-    for (row, slot) in arm_of_allocation_row.iter_mut().enumerate() {
-        let code = allocation.cell(row, arm_column).trim();
-        match treatment.arms.iter().position(|arm| arm.code == code) {
-            Some(arm) => {
-                *slot = Some(arm);
-            }
-            None => {
-                let levels: Vec<&str> =
-                    treatment.arms.iter().map(|arm| arm.code.as_str()).collect();
-                collector.push(
-                    Problem::new(
-                        ErrorKind::DataValue,
-                        format!(
-                            "treatment \"{code}\" is not one of the planned arms ({})",
-                            levels.join(", ")
-                        ),
-                    )
-                    .at(allocation.cell_location(row, arm_column)),
-                );
-            }
-        }
-    }
-
-    // Per subject (in file order): the arm of its allocation row, if it has one with a
-    // planned arm.
-    let arm_of_subject: Vec<Option<usize>> = subject_rows
-        .iter()
-        .map(|(id, _)| {
-            allocation_index
-                .get(id)
-                .and_then(|&row| arm_of_allocation_row[row])
-        })
-        .collect();
-    let only_in_subjects: Vec<String> = subject_rows
-        .iter()
-        .zip(&arm_of_subject)
-        .filter(|(_, arm)| arm.is_none())
-        .map(|((id, _), _)| id.to_string())
-        .collect();
-    let only_in_allocation: Vec<String> = allocation_rows
-        .iter()
-        .filter(|(id, _)| !subject_index.contains_key(id))
-        .map(|(id, _)| id.to_string())
-        .collect();
-    // A subject whose arm was rejected above would also count as unmatched;
-    // saying so twice would bury the real problem.
-    let arms_rejected = !collector.problems.is_empty();
-    if plan.data.unmatched == UnmatchedRule::Error
-        && !arms_rejected
-        && (!only_in_subjects.is_empty() || !only_in_allocation.is_empty())
-    {
-        let sample = |ids: &[String]| ids.iter().take(5).cloned().collect::<Vec<_>>().join(", ");
-        let mut parts = Vec::new();
-        if !only_in_subjects.is_empty() {
-            parts.push(format!(
-                "{} subject(s) in {} have no allocation (first: {})",
-                only_in_subjects.len(),
-                subjects.file,
-                sample(&only_in_subjects)
-            ));
-        }
-        if !only_in_allocation.is_empty() {
-            parts.push(format!(
-                "{} subject(s) in {} are missing from {} (first: {})",
-                only_in_allocation.len(),
-                allocation.file,
-                subjects.file,
-                sample(&only_in_allocation)
-            ));
-        }
-        collector.push(
-            Problem::new(ErrorKind::DataJoin, parts.join("; "))
-                .at(Location::file(subjects.file.clone()))
-                .with_hint(
-                    "set data.unmatched-subjects: exclude to leave them out and report them",
-                ),
-        );
-    }
-
-    let (matched_rows, arms): (Vec<usize>, Vec<usize>) = subject_rows
-        .iter()
-        .zip(&arm_of_subject)
-        .filter_map(|((_, row), arm)| arm.map(|arm| (*row, arm)))
-        .unzip();
+    let allocation_rows = allocation.n_rows();
+    drop(allocation);
     let subject_ids = SubjectIds::from_keys(
         matched_rows
             .iter()
@@ -387,7 +417,7 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: &Table) -> Result<Stu
     }
     let join = JoinSummary {
         subjects_rows: subjects.n_rows(),
-        allocation_rows: allocation.n_rows(),
+        allocation_rows,
         matched: subject_ids.len(),
         only_in_subjects,
         only_in_allocation,
@@ -430,17 +460,78 @@ fn require_column(
     found
 }
 
-/// Keys in file order with their row; duplicates and empty keys are problems.
-/// The non-empty keys of `column` in file order with their rows, and an index from key to
-/// row; an empty or repeated key is a problem (the repeat is left out).
-fn unique_keys<'a>(
-    table: &'a Table,
-    column: usize,
-    collector: &mut Collector,
-) -> (Vec<(&'a str, usize)>, HashMap<&'a str, usize>) {
-    // Looked up, never iterated: its order cannot reach any output.
-    let mut first_row: HashMap<&str, usize> = HashMap::with_capacity(table.n_rows());
-    let mut keys = Vec::with_capacity(table.n_rows());
+/// No planned arm (an allocation row whose arm was refused, or a subject without one).
+const NO_ARM: u32 = u32::MAX;
+
+/// An index from subject key to row of one key column of a table: open addressing over row
+/// numbers (4 bytes a slot, at most half full), the keys read from the table itself, hashed
+/// with the standard library's randomly keyed hasher. Looked up, never iterated, so neither the
+/// hash nor the slot order can reach an output.
+struct KeyIndex {
+    hasher: std::collections::hash_map::RandomState,
+    /// Row + 1 per slot; 0 for an empty slot.
+    slots: Vec<u32>,
+}
+
+impl KeyIndex {
+    fn with_capacity(keys: usize) -> KeyIndex {
+        let size = (2 * keys.max(1)).next_power_of_two();
+        KeyIndex {
+            hasher: std::collections::hash_map::RandomState::new(),
+            slots: vec![0; size],
+        }
+    }
+
+    fn first_slot(&self, key: &str) -> usize {
+        use std::hash::BuildHasher;
+        (self.hasher.hash_one(key) as usize) & (self.slots.len() - 1)
+    }
+
+    /// The row of `key`, or `None`.
+    fn get(&self, table: &Table, column: usize, key: &str) -> Option<usize> {
+        let mask = self.slots.len() - 1;
+        let mut slot = self.first_slot(key);
+        loop {
+            match self.slots[slot] {
+                0 => return None,
+                stored => {
+                    let row = stored as usize - 1;
+                    if table.cell(row, column).trim() == key {
+                        return Some(row);
+                    }
+                }
+            }
+            slot = (slot + 1) & mask;
+        }
+    }
+
+    /// Adds `key` at `row`, or returns the row that already holds it.
+    fn insert(&mut self, table: &Table, column: usize, key: &str, row: usize) -> Result<(), usize> {
+        let mask = self.slots.len() - 1;
+        let mut slot = self.first_slot(key);
+        loop {
+            match self.slots[slot] {
+                0 => {
+                    self.slots[slot] = row as u32 + 1;
+                    return Ok(());
+                }
+                stored => {
+                    let first = stored as usize - 1;
+                    if table.cell(first, column).trim() == key {
+                        return Err(first);
+                    }
+                }
+            }
+            slot = (slot + 1) & mask;
+        }
+    }
+}
+
+/// The rows of the non-empty keys of `column` in file order, and an index from key to row; an
+/// empty or repeated key is a problem (the repeat is left out).
+fn unique_keys(table: &Table, column: usize, collector: &mut Collector) -> (Vec<u32>, KeyIndex) {
+    let mut index = KeyIndex::with_capacity(table.n_rows());
+    let mut rows = Vec::with_capacity(table.n_rows());
     for row in 0..table.n_rows() {
         let key = table.cell(row, column).trim();
         if key.is_empty() {
@@ -450,27 +541,22 @@ fn unique_keys<'a>(
             );
             continue;
         }
-        match first_row.entry(key) {
-            std::collections::hash_map::Entry::Occupied(first) => {
-                collector.push(
-                    Problem::new(
-                        ErrorKind::DataValue,
-                        format!(
-                            "subject key \"{key}\" appears twice (first on line {})",
-                            table.lines[*first.get()]
-                        ),
-                    )
-                    .at(table.cell_location(row, column)),
-                );
-                continue;
-            }
-            std::collections::hash_map::Entry::Vacant(slot) => {
-                slot.insert(row);
-            }
+        if let Err(first) = index.insert(table, column, key, row) {
+            collector.push(
+                Problem::new(
+                    ErrorKind::DataValue,
+                    format!(
+                        "subject key \"{key}\" appears twice (first on line {})",
+                        table.lines[first]
+                    ),
+                )
+                .at(table.cell_location(row, column)),
+            );
+            continue;
         }
-        keys.push((key, row));
+        rows.push(row as u32);
     }
-    (keys, first_row)
+    (rows, index)
 }
 
 fn type_column(

@@ -181,8 +181,9 @@ pub(crate) fn run_irls(
     let mut working_response = vec![0.0; n_rows];
     let mut candidate_eta = vec![0.0; n_rows];
     let mut candidate_means = vec![0.0; n_rows];
+    // Per-row scratch for the score, and for the observed weights of a Newton step (never
+    // needed at the same time: the score's sums are formed before the weights are written).
     let mut score_buffer = vec![0.0; n_rows];
-    let mut observed_weights = vec![0.0; n_rows];
     let mut derivatives = vec![0.0; n_rows];
     let mut last_relative_change = f64::INFINITY;
     let mut iterations = 0;
@@ -253,7 +254,7 @@ pub(crate) fn run_irls(
                     any_clamped |=
                         problem.weights[i] > 0.0 && kernel.is_clamped(linear_predictor[i]);
                     let prior = problem.weights[i];
-                    observed_weights[i] = if prior > 0.0 {
+                    score_buffer[i] = if prior > 0.0 {
                         kernel.observed_weight_given_derivative(
                             problem.response[i],
                             linear_predictor[i],
@@ -269,7 +270,7 @@ pub(crate) fn run_irls(
                     problem.design,
                     problem.sparse_rows,
                     active,
-                    &observed_weights,
+                    &score_buffer,
                     None,
                 );
                 ScaledCholesky::new(&observed)
