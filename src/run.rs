@@ -534,7 +534,7 @@ fn subject_flow(plan: &Plan, data: &StudyData) -> SubjectFlow {
     let arms = plan.data.treatment.arms.len();
     let mut randomised = vec![0; arms];
     for &arm in &data.arms {
-        randomised[arm] += 1;
+        randomised[usize::from(arm)] += 1;
     }
     let populations = plan
         .populations
@@ -544,7 +544,7 @@ fn subject_flow(plan: &Plan, data: &StudyData) -> SubjectFlow {
             if let data::Column::Categorical { levels, codes } = &data.columns[population.column] {
                 for (row, code) in codes.iter().enumerate() {
                     if code.is_some_and(|code| population.values.contains(&levels[code])) {
-                        per_arm[data.arms[row]] += 1;
+                        per_arm[usize::from(data.arms[row])] += 1;
                     }
                 }
             }

@@ -108,20 +108,22 @@ impl NumericValues {
     }
 }
 
-/// A categorical column's codes, 4 bytes a value: a missing value is held as `u32::MAX`,
-/// which no code reaches (a factor has at most `MAX_LEVELS` levels).
+/// A categorical column's codes, 2 bytes a value: a missing value is held as `u16::MAX`,
+/// which no code reaches (a factor has at most `MAX_LEVELS` levels, checked below).
 #[derive(Debug, Clone, PartialEq)]
-pub struct Codes(Vec<u32>);
+pub struct Codes(Vec<u16>);
+
+const _: () = assert!(super::MAX_LEVELS < u16::MAX as usize);
 
 impl Codes {
-    const MISSING: u32 = u32::MAX;
+    const MISSING: u16 = u16::MAX;
 
     pub fn from_options(codes: impl IntoIterator<Item = Option<usize>>) -> Codes {
         Codes(
             codes
                 .into_iter()
                 .map(|code| {
-                    code.and_then(|code| u32::try_from(code).ok())
+                    code.and_then(|code| u16::try_from(code).ok())
                         .filter(|&code| code != Self::MISSING)
                         .unwrap_or(Self::MISSING)
                 })
@@ -165,8 +167,8 @@ pub struct JoinSummary {
 #[derive(Debug, Clone, PartialEq)]
 pub struct StudyData {
     pub subject_ids: SubjectIds,
-    /// Arm index (into the plan's arms) per subject.
-    pub arms: Vec<usize>,
+    /// Arm index (into the plan's arms, of which there are at most `MAX_ARMS`) per subject.
+    pub arms: Vec<u16>,
     /// One column per plan variable, in the plan's order.
     pub columns: Vec<Column>,
     pub join: JoinSummary,
@@ -360,11 +362,11 @@ pub fn assemble(plan: &Plan, subjects: &Table, allocation: Table) -> Result<Stud
                     ),
             );
         }
-        let (matched_rows, arms): (Vec<usize>, Vec<usize>) = subject_rows
+        let (matched_rows, arms): (Vec<usize>, Vec<u16>) = subject_rows
             .iter()
             .zip(&arm_of_subject)
             .filter(|(_, arm)| **arm != NO_ARM)
-            .map(|(&row, &arm)| (row as usize, arm as usize))
+            .map(|(&row, &arm)| (row as usize, arm as u16))
             .unzip();
         (
             matched_rows,

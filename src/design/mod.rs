@@ -143,8 +143,6 @@ pub struct Design {
     pub terms: Vec<Term>,
     /// Per arm: its indicator column, `None` for the reference arm.
     pub treatment_columns: Vec<Option<usize>>,
-    /// Indices into the study data of the analysed subjects.
-    pub analysed: Vec<usize>,
     /// Arm index per analysed subject.
     pub arm_of_row: Vec<usize>,
     /// Per arm: subjects in the population, and analysed.
@@ -206,7 +204,7 @@ pub fn build_with_layout(
         .collect();
     let mut in_population_per_arm = vec![0; arms.len()];
     for &row in &in_population {
-        in_population_per_arm[data.arms[row]] += 1;
+        in_population_per_arm[usize::from(data.arms[row])] += 1;
     }
 
     let exposure = match &analysis.model {
@@ -240,7 +238,7 @@ pub fn build_with_layout(
                         exclusions.len() - 1
                     }
                 };
-                exclusions[position].per_arm[data.arms[row]] += 1;
+                exclusions[position].per_arm[usize::from(data.arms[row])] += 1;
             }
         }
     }
@@ -253,7 +251,7 @@ pub fn build_with_layout(
 
     let mut analysed_per_arm = vec![0; arms.len()];
     for &row in &analysed {
-        analysed_per_arm[data.arms[row]] += 1;
+        analysed_per_arm[usize::from(data.arms[row])] += 1;
     }
     if analysed.is_empty() {
         return Err(fail(format!(
@@ -335,7 +333,7 @@ pub fn build_with_layout(
         columns.push(
             analysed
                 .iter()
-                .map(|&row| f64::from(u8::from(data.arms[row] == arm_index))),
+                .map(|&row| f64::from(u8::from(usize::from(data.arms[row]) == arm_index))),
         );
         column_names.push(format!("treatment = {}", arm.label));
         column_terms.push(treatment_term);
@@ -448,7 +446,10 @@ pub fn build_with_layout(
     };
     check_covariates(analysis, &terms, &columns, &column_names, &fail)?;
     let matrix = columns.finish();
-    let arm_of_row = analysed.iter().map(|&row| data.arms[row]).collect();
+    let arm_of_row = analysed
+        .iter()
+        .map(|&row| usize::from(data.arms[row]))
+        .collect();
     Ok(Design {
         matrix,
         response,
@@ -458,7 +459,6 @@ pub fn build_with_layout(
         column_terms,
         terms,
         treatment_columns,
-        analysed,
         arm_of_row,
         in_population: in_population_per_arm,
         analysed_per_arm,

@@ -189,6 +189,12 @@ pub fn analyse(
         Ok(test) => treatment_tests.push(test),
         Err(reason) => failures.push(reason),
     }
+    // The fit's per-subject vectors serve only as the profile limits' warm start; without
+    // those limits they are freed before the model without treatment is fitted.
+    if !(spec.profile_intervals && method == Method::MaximumLikelihood) {
+        fit.fitted_means = Vec::new();
+        fit.linear_predictors = Vec::new();
+    }
     match likelihood_ratio_test(design, &data, &options, &fit, &treatment_columns) {
         Ok(test) => treatment_tests.push(test),
         Err(reason) => failures.push(format!("likelihood-ratio test: {reason}")),

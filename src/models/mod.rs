@@ -73,6 +73,10 @@ impl<'a> DenseOnDemand<'a> {
         self.input.nrows()
     }
 
+    pub(crate) fn input(&self) -> DesignInput<'a> {
+        self.input
+    }
+
     pub(crate) fn ncols(&self) -> usize {
         self.input.ncols()
     }

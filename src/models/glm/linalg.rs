@@ -346,6 +346,11 @@ impl SparseRows {
         dense
     }
 
+    /// Whether `column` is 1 in every row.
+    pub fn column_is_ones(&self, column: usize) -> bool {
+        (0..self.n_rows).all(|row| self.get(row, column) == 1.0)
+    }
+
     /// The largest absolute stored entry of `column` (0 when none is stored).
     pub fn column_largest_abs(&self, column: usize) -> f64 {
         let mut largest = 0.0_f64;

@@ -761,12 +761,29 @@ fn fit_negative_binomial(
 fn null_deviance(kernel: &Kernel, prepared: &PreparedData, options: &GlmOptions) -> Option<f64> {
     let problem = prepared.problem();
     if options.has_intercept {
-        let ones = DMatrix::<f64>::from_element(prepared.design.nrows(), 1, 1.0);
-        let ones = crate::models::DenseOnDemand::new(crate::models::DesignInput::Dense(&ones));
-        let intercept_problem = Problem {
-            design: &ones,
-            sparse_rows: None,
-            ..problem
+        // A design held as rows whose first column is the intercept serves as it is (the same
+        // sums as a column of ones, without another n-vector); otherwise a column of ones.
+        let ones;
+        let ones_design;
+        let intercept_problem = match (prepared.design.input(), prepared.sparse_rows.as_deref()) {
+            (crate::models::DesignInput::Rows(rows), Some(stored))
+                if prepared.columns.first() == Some(&0) && rows.column_is_ones(0) =>
+            {
+                Problem {
+                    sparse_rows: Some(stored),
+                    ..problem
+                }
+            }
+            _ => {
+                ones = DMatrix::<f64>::from_element(prepared.design.nrows(), 1, 1.0);
+                ones_design =
+                    crate::models::DenseOnDemand::new(crate::models::DesignInput::Dense(&ones));
+                Problem {
+                    design: &ones_design,
+                    sparse_rows: None,
+                    ..problem
+                }
+            }
         };
         let outcome = run_irls(
             kernel,
