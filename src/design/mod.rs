@@ -80,11 +80,22 @@ impl DesignMatrix {
         }
     }
 
-    /// The sum of `column` over the rows, in row order.
-    pub fn column_sum(&self, column: usize) -> f64 {
+    /// The sum of each column over the rows, in row order.
+    pub fn column_sums(&self) -> Vec<f64> {
         match self {
-            DesignMatrix::Dense(matrix) => matrix.column(column).iter().sum::<f64>(),
-            DesignMatrix::Rows(rows) => rows.column_sum(column),
+            DesignMatrix::Dense(matrix) => (0..matrix.ncols())
+                .map(|column| matrix.column(column).iter().sum::<f64>())
+                .collect(),
+            DesignMatrix::Rows(rows) => {
+                let mut sums = vec![0.0; rows.ncols()];
+                for row in 0..rows.nrows() {
+                    let (columns, values) = rows.entries(row);
+                    for (&column, &value) in columns.iter().zip(values) {
+                        sums[column as usize] += value;
+                    }
+                }
+                sums
+            }
         }
     }
 }

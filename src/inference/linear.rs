@@ -217,6 +217,7 @@ pub fn infer(
 /// to `arm` for everyone.
 pub(crate) fn averaged_row(design: &Design, arm: usize) -> Vec<f64> {
     let n = design.n_rows() as f64;
+    let sums = design.matrix.column_sums();
     (0..design.column_names.len())
         .map(|column| {
             if let Some(position) = design
@@ -226,7 +227,7 @@ pub(crate) fn averaged_row(design: &Design, arm: usize) -> Vec<f64> {
             {
                 f64::from(u8::from(position == arm))
             } else {
-                design.matrix.column_sum(column) / n
+                sums[column] / n
             }
         })
         .collect()

@@ -440,17 +440,35 @@ fn validate(input: &MarginalInput) -> Result<(usize, Vec<usize>), MarginalError>
             found: input.coefficients.len(),
         });
     }
-    for column in 0..n_columns {
-        let values = column_values(design, column);
-        for (row, value) in values.iter().enumerate() {
-            if !value.is_finite() {
-                return Err(MarginalError::NonFiniteInput {
-                    what: "design",
-                    row,
-                    column,
-                });
+    // The first non-finite entry in the order column, then row.
+    let non_finite = match design {
+        DesignInput::Dense(matrix) => (0..n_columns).find_map(|column| {
+            matrix
+                .column(column)
+                .iter()
+                .position(|value| !value.is_finite())
+                .map(|row| (column, row))
+        }),
+        DesignInput::Rows(rows) => {
+            let mut first: Option<(usize, usize)> = None;
+            for row in 0..n_rows {
+                let (columns, values) = rows.entries(row);
+                for (&column, value) in columns.iter().zip(values) {
+                    let column = column as usize;
+                    if !value.is_finite() && first.is_none_or(|(c, _)| column < c) {
+                        first = Some((column, row));
+                    }
+                }
             }
+            first
         }
+    };
+    if let Some((column, row)) = non_finite {
+        return Err(MarginalError::NonFiniteInput {
+            what: "design",
+            row,
+            column,
+        });
     }
     let finite_slices = [
         ("response", Some(input.response)),
@@ -568,11 +586,26 @@ pub fn marginal_means(input: &MarginalInput) -> Result<MarginalMeans, MarginalEr
         Some(offset) => offset.to_vec(),
         None => vec![0.0; n_rows],
     };
-    for column in (0..n_columns).filter(|&column| !is_treatment_column[column]) {
-        let coefficient = input.coefficients[column];
-        let values = column_values(design, column);
-        for (value, x) in base_predictor.iter_mut().zip(values.iter()) {
-            *value += x * coefficient;
+    match design {
+        DesignInput::Dense(matrix) => {
+            for column in (0..n_columns).filter(|&column| !is_treatment_column[column]) {
+                let coefficient = input.coefficients[column];
+                for (value, x) in base_predictor.iter_mut().zip(matrix.column(column).iter()) {
+                    *value += x * coefficient;
+                }
+            }
+        }
+        // Each row's terms in the same column order, zero entries (which add ±0) skipped.
+        DesignInput::Rows(rows) => {
+            for (row, value) in base_predictor.iter_mut().enumerate() {
+                let (columns, entries) = rows.entries(row);
+                for (&column, &x) in columns.iter().zip(entries) {
+                    let column = column as usize;
+                    if !is_treatment_column[column] {
+                        *value += x * input.coefficients[column];
+                    }
+                }
+            }
         }
     }
 
@@ -597,6 +630,30 @@ pub fn marginal_means(input: &MarginalInput) -> Result<MarginalMeans, MarginalEr
         }
         means[arm] = sum / n;
         if needs_jacobian {
+            // Σ_rows h′ x per column, each over the rows in order (a design held as rows
+            // skips its zero entries, which add ±0).
+            let totals: Vec<f64> = match design {
+                DesignInput::Dense(matrix) => (0..n_columns)
+                    .map(|column| {
+                        let mut total = 0.0;
+                        for (derivative, x) in derivatives.iter().zip(matrix.column(column).iter())
+                        {
+                            total += derivative * x;
+                        }
+                        total
+                    })
+                    .collect(),
+                DesignInput::Rows(rows) => {
+                    let mut totals = vec![0.0; n_columns];
+                    for (row, derivative) in derivatives.iter().enumerate() {
+                        let (columns, entries) = rows.entries(row);
+                        for (&column, &x) in columns.iter().zip(entries) {
+                            totals[column as usize] += derivative * x;
+                        }
+                    }
+                    totals
+                }
+            };
             for column in 0..n_columns {
                 jacobian[(arm, column)] = if is_treatment_column[column] {
                     if input.treatment_columns[arm] == Some(column) {
@@ -605,12 +662,7 @@ pub fn marginal_means(input: &MarginalInput) -> Result<MarginalMeans, MarginalEr
                         0.0
                     }
                 } else {
-                    let mut total = 0.0;
-                    let values = column_values(design, column);
-                    for (derivative, x) in derivatives.iter().zip(values.iter()) {
-                        total += derivative * x;
-                    }
-                    total / n
+                    totals[column] / n
                 };
             }
         }
@@ -807,24 +859,6 @@ fn weighted_cross_totals(design: DesignInput, weights: &[f64]) -> Vec<f64> {
         block_start = block_end;
     }
     totals
-}
-
-/// Every value of `column`, zeros included: the dense matrix's column in place, or scattered
-/// from the rows.
-fn column_values(design: DesignInput<'_>, column: usize) -> std::borrow::Cow<'_, [f64]> {
-    match design {
-        DesignInput::Dense(matrix) => {
-            let n_rows = matrix.nrows();
-            std::borrow::Cow::Borrowed(&matrix.as_slice()[column * n_rows..(column + 1) * n_rows])
-        }
-        DesignInput::Rows(rows) => {
-            let mut values = vec![0.0; rows.nrows()];
-            for (row, value) in values.iter_mut().enumerate() {
-                *value = rows.get(row, column);
-            }
-            std::borrow::Cow::Owned(values)
-        }
-    }
 }
 
 fn entry(design: DesignInput<'_>, row: usize, column: usize) -> f64 {

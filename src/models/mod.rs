@@ -179,9 +179,46 @@ impl<'a> DesignColumns<'a> {
                 let start = design_column * n_rows;
                 values.copy_from_slice(&matrix.as_slice()[start + rows.start..start + rows.end]);
             }
+            DesignInput::Rows(stored) => stored.column_into(design_column, rows, values),
+        }
+    }
+
+    /// Rows `rows` of every view column into `block`, column-major with `stride` rows a
+    /// column (at least `rows.len()`), zeros included: for a design held as rows, one pass
+    /// over the block's stored entries rather than a search per column.
+    pub fn block_columns_into(
+        &self,
+        rows: std::ops::Range<usize>,
+        block: &mut [f64],
+        stride: usize,
+    ) {
+        match self.design {
+            DesignInput::Dense(_) => {
+                let length = rows.len();
+                for column in 0..self.ncols() {
+                    let slot = column * stride;
+                    self.block_into(column, rows.clone(), &mut block[slot..slot + length]);
+                }
+            }
             DesignInput::Rows(stored) => {
-                for (value, row) in values.iter_mut().zip(rows) {
-                    *value = stored.get(row, design_column);
+                let length = rows.len();
+                for column in 0..self.ncols() {
+                    block[column * stride..column * stride + length]
+                        .iter_mut()
+                        .for_each(|value| *value = 0.0);
+                }
+                let mut position_of = vec![usize::MAX; stored.ncols()];
+                for (position, &column) in self.columns.iter().enumerate() {
+                    position_of[column] = position;
+                }
+                for (offset, row) in rows.enumerate() {
+                    let (columns, values) = stored.entries(row);
+                    for (&column, &value) in columns.iter().zip(values) {
+                        let position = position_of[column as usize];
+                        if position != usize::MAX {
+                            block[position * stride + offset] = value;
+                        }
+                    }
                 }
             }
         }

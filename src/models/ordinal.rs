@@ -781,12 +781,40 @@ pub(crate) fn check_finite_design(design: &DMatrix<f64>) -> Result<(), ModelInpu
 }
 
 pub(crate) fn check_finite_columns(design: DesignColumns<'_>) -> Result<(), ModelInputError> {
-    for column in 0..design.ncols() {
-        if let Some(row) = design.column(column).iter().position(|x| !x.is_finite()) {
-            return Err(ModelInputError::NonFiniteDesign { row, column });
+    // The first non-finite entry in the order view column, then row.
+    let first = match design.design() {
+        crate::models::DesignInput::Dense(_) => (0..design.ncols()).find_map(|column| {
+            design
+                .column(column)
+                .iter()
+                .position(|x| !x.is_finite())
+                .map(|row| (column, row))
+        }),
+        crate::models::DesignInput::Rows(rows) => {
+            let mut position_of = vec![usize::MAX; rows.ncols()];
+            for (position, &column) in design.design_columns().iter().enumerate() {
+                position_of[column] = position;
+            }
+            let mut first: Option<(usize, usize)> = None;
+            for row in 0..rows.nrows() {
+                let (columns, values) = rows.entries(row);
+                for (&column, value) in columns.iter().zip(values) {
+                    let position = position_of[column as usize];
+                    if position != usize::MAX
+                        && !value.is_finite()
+                        && first.is_none_or(|(p, _)| position < p)
+                    {
+                        first = Some((position, row));
+                    }
+                }
+            }
+            first
         }
+    };
+    match first {
+        Some((column, row)) => Err(ModelInputError::NonFiniteDesign { row, column }),
+        None => Ok(()),
     }
-    Ok(())
 }
 
 /// Checks shapes, finiteness, weights and response range; finds empty categories and aliased
@@ -872,24 +900,39 @@ pub(crate) fn prepare_common(
     let n_observations = weights.iter().filter(|&&w| w > 0.0).count();
     let empty_category = category_weight.iter().position(|&w| w <= 0.0);
     let n_columns = design.ncols();
-    let mut column_rms = vec![0.0; n_columns];
-    let mut column_range = vec![0.0; n_columns];
-    for column in 0..n_columns {
-        let mut minimum = f64::INFINITY;
-        let mut maximum = f64::NEG_INFINITY;
-        let mut sum_squares = 0.0;
-        let values = design.column(column);
-        for row in 0..n_rows {
-            if weights[row] > 0.0 {
-                let value = values[row];
-                minimum = minimum.min(value);
-                maximum = maximum.max(value);
-                sum_squares += weights[row] * value * value;
+    // Per column, over the rows of positive weight in order: range and weighted mean square.
+    // Blocks of rows are read for every column at once (one pass over a block's stored
+    // entries when the design is held as rows).
+    let mut minimum = vec![f64::INFINITY; n_columns];
+    let mut maximum = vec![f64::NEG_INFINITY; n_columns];
+    let mut sum_squares = vec![0.0; n_columns];
+    let block_rows = crate::models::glm::linalg::ROW_BLOCK;
+    let mut block = vec![0.0; block_rows * n_columns];
+    let mut start = 0;
+    while start < n_rows {
+        let end = (start + block_rows).min(n_rows);
+        design.block_columns_into(start..end, &mut block, block_rows);
+        for column in 0..n_columns {
+            let values = &block[column * block_rows..column * block_rows + (end - start)];
+            for (row, &value) in (start..end).zip(values) {
+                if weights[row] > 0.0 {
+                    minimum[column] = minimum[column].min(value);
+                    maximum[column] = maximum[column].max(value);
+                    sum_squares[column] += weights[row] * value * value;
+                }
             }
         }
-        column_rms[column] = (sum_squares / total_weight).sqrt();
-        column_range[column] = maximum - minimum;
+        start = end;
     }
+    let column_rms: Vec<f64> = sum_squares
+        .iter()
+        .map(|&sum| (sum / total_weight).sqrt())
+        .collect();
+    let column_range: Vec<f64> = maximum
+        .iter()
+        .zip(&minimum)
+        .map(|(&high, &low)| high - low)
+        .collect();
     Ok(PreparedInput {
         weights,
         total_weight,
@@ -912,31 +955,37 @@ pub(crate) fn aliased_columns_with_implicit_intercept(
 ) -> Vec<usize> {
     let n_columns = design.ncols();
     let n_rows = design.nrows();
-    let column = |c: usize| design.column(c);
-    let means: Vec<f64> = (0..n_columns)
-        .map(|c| {
-            column(c)
-                .iter()
-                .zip(weights)
-                .map(|(x, w)| w * x)
-                .sum::<f64>()
-                / total_weight
-        })
-        .collect();
+    // Blocks of rows of every column at once (one pass over a block's stored entries when the
+    // design is held as rows).
+    let block_rows = crate::models::glm::linalg::ROW_BLOCK;
+    let mut block_values = vec![0.0; block_rows * n_columns];
+    // Weighted column sums over the rows in order, from −0.0 as an iterator's sum starts.
+    let mut sums = vec![-0.0_f64; n_columns];
+    let mut start = 0;
+    while start < n_rows {
+        let end = (start + block_rows).min(n_rows);
+        design.block_columns_into(start..end, &mut block_values, block_rows);
+        for (c, sum) in sums.iter_mut().enumerate() {
+            let values = &block_values[c * block_rows..c * block_rows + (end - start)];
+            for (x, w) in values.iter().zip(&weights[start..end]) {
+                *sum += w * x;
+            }
+        }
+        start = end;
+    }
+    let means: Vec<f64> = sums.iter().map(|sum| sum / total_weight).collect();
     // Blocks of rows, centred column by column into contiguous buffers (one of them
     // weighted), so that every product below reads two contiguous slices.
-    let block_rows = crate::models::glm::linalg::ROW_BLOCK;
     let mut centred = vec![0.0; block_rows * n_columns];
     let mut weighted = vec![0.0; block_rows * n_columns];
     let mut cross = DMatrix::<f64>::zeros(n_columns, n_columns);
-    let mut block_values = vec![0.0; block_rows];
     let mut start = 0;
     while start < n_rows {
         let end = (start + block_rows).min(n_rows);
         let length = end - start;
+        design.block_columns_into(start..end, &mut block_values, block_rows);
         for c in 0..n_columns {
-            let values = &mut block_values[..length];
-            design.block_into(c, start..end, values);
+            let values = &block_values[c * block_rows..c * block_rows + length];
             let slot = c * block_rows;
             for (i, (&x, &w)) in values.iter().zip(&weights[start..end]).enumerate() {
                 let value = x - means[c];

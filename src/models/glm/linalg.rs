@@ -348,40 +348,51 @@ impl SparseRows {
 
     /// Whether `column` is 1 in every row.
     pub fn column_is_ones(&self, column: usize) -> bool {
-        (0..self.n_rows).all(|row| self.get(row, column) == 1.0)
+        (0..self.n_rows).all(|row| self.find(row, column as u32) == Some(1.0))
     }
 
     /// The largest absolute stored entry of `column` (0 when none is stored).
     pub fn column_largest_abs(&self, column: usize) -> f64 {
         let mut largest = 0.0_f64;
         for row in 0..self.n_rows {
-            let (columns, values) = self.entries(row);
-            if let Ok(index) = columns.binary_search(&(column as u32)) {
-                largest = largest.max(values[index].abs());
+            if let Some(value) = self.find(row, column as u32) {
+                largest = largest.max(value.abs());
             }
         }
         largest
     }
 
-    /// Sum of column `column` over the rows, in row order.
-    pub fn column_sum(&self, column: usize) -> f64 {
-        let mut sum = 0.0;
-        for row in 0..self.n_rows {
-            let (columns, values) = self.entries(row);
-            if let Ok(index) = columns.binary_search(&(column as u32)) {
-                sum += values[index];
-            }
+    /// Rows `rows` of `column` into `values` (of the same length), zeros included.
+    pub fn column_into(&self, column: usize, rows: std::ops::Range<usize>, values: &mut [f64]) {
+        for (value, row) in values.iter_mut().zip(rows) {
+            *value = self.find(row, column as u32).unwrap_or(0.0);
         }
-        sum
     }
 
     /// The entry at (`row`, `column`); 0 when it is not stored.
     pub fn get(&self, row: usize, column: usize) -> f64 {
-        let (columns, values) = self.entries(row);
-        columns
-            .binary_search(&(column as u32))
-            .map(|index| values[index])
-            .unwrap_or(0.0)
+        self.find(row, column as u32).unwrap_or(0.0)
+    }
+
+    /// The stored entry at (`row`, `column`): a short row (a design of dummies has a few
+    /// entries a row) is scanned, a long one searched.
+    #[inline]
+    fn find(&self, row: usize, column: u32) -> Option<f64> {
+        let start = self.row_starts[row];
+        let columns = &self.columns[start..self.row_starts[row + 1]];
+        if columns.len() <= 16 {
+            for (offset, &stored) in columns.iter().enumerate() {
+                if stored >= column {
+                    return (stored == column).then(|| self.values[start + offset]);
+                }
+            }
+            None
+        } else {
+            columns
+                .binary_search(&column)
+                .ok()
+                .map(|offset| self.values[start + offset])
+        }
     }
 
     /// The stored entries of `row`: design columns (ascending) and values.
