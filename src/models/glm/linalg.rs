@@ -534,21 +534,41 @@ fn sparse_weighted_cross_product(
     // Block partial sums, row-major upper triangle (a ≤ b).
     let mut partial = vec![0.0_f64; n_active * n_active];
     let mut partial_vector = vec![0.0_f64; n_active];
-    let mut non_zeros = BlockNonZeros::new(n_active);
+    // A dense design's non-zeros are gathered a block of rows at a time, column by column; the
+    // stored rows are read a row at a time into a buffer of one row (the same entries in the
+    // same order either way).
+    let mut non_zeros = rows.is_none().then(|| BlockNonZeros::new(n_active));
+    let mut row_positions: Vec<usize> = Vec::with_capacity(n_active);
+    let mut row_values: Vec<f64> = Vec::with_capacity(n_active);
     let mut block_start = 0;
     while block_start < n_rows {
         let block_end = (block_start + ROW_BLOCK).min(n_rows);
-        match rows {
-            Some(rows) => non_zeros.gather_stored(rows, &position_of, block_start..block_end),
-            None => non_zeros.gather(
+        if let Some(non_zeros) = non_zeros.as_mut() {
+            non_zeros.gather(
                 design.dense().as_slice(),
                 n_rows,
                 active,
                 block_start..block_end,
-            ),
+            );
         }
         for row in block_start..block_end {
-            let (positions, values) = non_zeros.row(row - block_start);
+            let (positions, values): (&[usize], &[f64]) = match (rows, non_zeros.as_ref()) {
+                (Some(rows), _) => {
+                    row_positions.clear();
+                    row_values.clear();
+                    let (columns, entries) = rows.entries(row);
+                    for (&column, &value) in columns.iter().zip(entries) {
+                        let position = position_of[column as usize];
+                        if position != usize::MAX {
+                            row_positions.push(position);
+                            row_values.push(value);
+                        }
+                    }
+                    (&row_positions, &row_values)
+                }
+                (None, Some(non_zeros)) => non_zeros.row(row - block_start),
+                (None, None) => (&[], &[]),
+            };
             let w = weights[row];
             for (i, (&a, &x_a)) in positions.iter().zip(values).enumerate() {
                 for (&b, &x_b) in positions[i..].iter().zip(&values[i..]) {
