@@ -776,14 +776,17 @@ fn large_plan(folder: &Path, n: usize, failures: &mut Vec<String>) {
         let all_variables_mib = (n * synthetic::Trial::N_PLAN_VARIABLES * 8) as f64 / 1048576.0;
         let design_mib = (n * p * 8) as f64 / 1048576.0;
         match peak_kib {
+            // The data held as f64: every plan variable and the arm, one double a value (a
+            // factor as its code); the numeric columns alone are shown beside it.
             Some(kib) => println!(
-                "peak resident memory {:.0} MiB; data as f64 ({n} × {} numeric columns × 8 B) = {data_mib:.0} MiB, target ≤ 3× = {:.0} MiB (ratio {:.1}×); every plan variable and the arm as f64 ({} columns) = {all_variables_mib:.0} MiB, 3× = {:.0} MiB; one {n} × {p} design as f64 = {design_mib:.0} MiB",
+                "peak resident memory {:.0} MiB; the data as f64 (every plan variable and the arm, {n} × {} columns × 8 B) = {all_variables_mib:.0} MiB, target ≤ 3× = {:.0} MiB (ratio {:.2}×); the numeric columns alone ({}) = {data_mib:.0} MiB, 3× = {:.0} MiB (ratio {:.1}×); one {n} × {p} design as f64 = {design_mib:.0} MiB",
                 kib / 1024.0,
+                synthetic::Trial::N_PLAN_VARIABLES,
+                3.0 * all_variables_mib,
+                kib / 1024.0 / all_variables_mib,
                 synthetic::Trial::N_NUMERIC_SUBJECT_COLUMNS,
                 3.0 * data_mib,
                 kib / 1024.0 / data_mib,
-                synthetic::Trial::N_PLAN_VARIABLES,
-                3.0 * all_variables_mib
             ),
             None => println!("peak memory not measured (/usr/bin/time not available)"),
         }

@@ -290,12 +290,12 @@ impl Trial {
         text
     }
 
-    /// Numeric columns of the subjects file (BASE, CHG, EVENTS, YEARS, EXACERB), the measure of
-    /// "the data held as f64" against which peak memory is reported.
+    /// Numeric columns of the subjects file (BASE, CHG, EVENTS, YEARS, EXACERB), a narrower
+    /// measure of the data, shown beside the target's.
     pub const N_NUMERIC_SUBJECT_COLUMNS: usize = 5;
 
-    /// The plan's ten variables and the treatment arm: the wider measure of the data, each
-    /// value held as one f64 (a factor by its code).
+    /// The plan's ten variables and the treatment arm: "the data held as f64", each value one
+    /// double (a factor by its code), against which peak memory is reported.
     pub const N_PLAN_VARIABLES: usize = 11;
 }
 
