@@ -181,9 +181,10 @@ pub(crate) fn run_irls(
     let mut working_response = vec![0.0; n_rows];
     let mut candidate_eta = vec![0.0; n_rows];
     let mut candidate_means = vec![0.0; n_rows];
-    // Per-row scratch for the score, and for the observed weights of a Newton step (never
-    // needed at the same time: the score's sums are formed before the weights are written).
-    let mut score_buffer = vec![0.0; n_rows];
+    // Per-row scratch for the score and for the observed weights of a Newton step is
+    // `candidate_means`: each is written and summed before the step's candidates are formed (and
+    // the score of a rejected step is taken after its candidates are dead), so no other n-vector
+    // is needed (at 10⁶ rows each is 8 MB).
     let mut derivatives = vec![0.0; n_rows];
     let mut last_relative_change = f64::INFINITY;
     let mut iterations = 0;
@@ -219,7 +220,7 @@ pub(crate) fn run_irls(
                 active,
                 &means,
                 &derivatives,
-                &mut score_buffer,
+                &mut candidate_means,
             );
             let standardised = max_standardised_score(&current_score, &information);
             if last_relative_change < tolerances.deviance && standardised < tolerances.score {
@@ -254,7 +255,7 @@ pub(crate) fn run_irls(
                     any_clamped |=
                         problem.weights[i] > 0.0 && kernel.is_clamped(linear_predictor[i]);
                     let prior = problem.weights[i];
-                    score_buffer[i] = if prior > 0.0 {
+                    candidate_means[i] = if prior > 0.0 {
                         kernel.observed_weight_given_derivative(
                             problem.response[i],
                             linear_predictor[i],
@@ -270,7 +271,7 @@ pub(crate) fn run_irls(
                     problem.design,
                     problem.sparse_rows,
                     active,
-                    &score_buffer,
+                    &candidate_means,
                     None,
                 );
                 ScaledCholesky::new(&observed)
@@ -359,7 +360,7 @@ pub(crate) fn run_irls(
                         active,
                         &linear_predictor,
                         &means,
-                        &mut score_buffer,
+                        &mut candidate_means,
                     );
                     if max_standardised_score(&score, &information) < tolerances.score {
                         break IrlsStatus::Converged;
