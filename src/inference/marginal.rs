@@ -440,29 +440,7 @@ fn validate(input: &MarginalInput) -> Result<(usize, Vec<usize>), MarginalError>
             found: input.coefficients.len(),
         });
     }
-    // The first non-finite entry in the order column, then row.
-    let non_finite = match design {
-        DesignInput::Dense(matrix) => (0..n_columns).find_map(|column| {
-            matrix
-                .column(column)
-                .iter()
-                .position(|value| !value.is_finite())
-                .map(|row| (column, row))
-        }),
-        DesignInput::Rows(rows) => {
-            let mut first: Option<(usize, usize)> = None;
-            for row in 0..n_rows {
-                let (columns, values) = rows.entries(row);
-                for (&column, value) in columns.iter().zip(values) {
-                    let column = column as usize;
-                    if !value.is_finite() && first.is_none_or(|(c, _)| column < c) {
-                        first = Some((column, row));
-                    }
-                }
-            }
-            first
-        }
-    };
+    let non_finite = design.first_non_finite(&(0..n_columns).collect::<Vec<_>>());
     if let Some((column, row)) = non_finite {
         return Err(MarginalError::NonFiniteInput {
             what: "design",

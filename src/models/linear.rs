@@ -64,6 +64,7 @@
 //! from common software. Householder QR is backward stable without pivoting,
 //! so accuracy is not lost by this choice.
 
+use crate::models::DesignInput;
 use crate::models::glm::linalg::SparseRows;
 #[allow(unused_imports)]
 use crate::models::portable::Portable;
@@ -492,24 +493,17 @@ pub fn fit_least_squares_rows(
         });
     }
     debug_assert!(rows.holds_every_column());
-    // The first non-finite entry in column-major order, as the dense check reports it.
-    let mut first_non_finite: Option<(usize, usize)> = None;
+    let every: Vec<usize> = (0..n_columns).collect();
+    if let Some((column, row)) = DesignInput::Rows(rows).first_non_finite(&every) {
+        return Err(LeastSquaresError::NonFiniteDesign { row, column });
+    }
     let mut largest = vec![0.0_f64; n_columns];
     for row in 0..n_observations {
         let (columns, values) = rows.entries(row);
         for (&column, &value) in columns.iter().zip(values) {
             let column = column as usize;
-            if !value.is_finite() {
-                if first_non_finite.is_none_or(|(c, _)| column < c) {
-                    first_non_finite = Some((column, row));
-                }
-            } else {
-                largest[column] = largest[column].max(value.abs());
-            }
+            largest[column] = largest[column].max(value.abs());
         }
-    }
-    if let Some((column, row)) = first_non_finite {
-        return Err(LeastSquaresError::NonFiniteDesign { row, column });
     }
     if let Some(row) = response.iter().position(|value| !value.is_finite()) {
         return Err(LeastSquaresError::NonFiniteResponse { row });
@@ -649,7 +643,7 @@ fn absorb_block(triangle: &mut [f64], size: usize, block: &mut [f64], height: us
 
 /// Solves the semi-normal equations `RᵀR x = Aᵀb − c` for the accepted columns, starting from
 /// the QR solution with `rotated_b` (the leading part of `Qᵀb`), and refines `x` with
-/// `h = Aᵀ(b − A x) − c` in double-double, by the rule of [`refined_augmented_solve`].
+/// `h = Aᵀ(b − A x) − c` in double-double, stopping by [`Refinement`]'s rule.
 fn refined_seminormal_solve(
     factorization: &PivotedQr,
     kept_columns: &KeptColumns,
@@ -660,9 +654,7 @@ fn refined_seminormal_solve(
 ) -> AugmentedSolution {
     let (_, mut x) = factorization.solve_augmented(rotated_b, c);
     let zeros = vec![0.0; factorization.n_observations];
-    let mut previous_correction = max_abs(&x);
-    let mut refinement_steps = 0;
-    let mut converged = false;
+    let mut progress = Refinement::starting_from(&x);
     for _ in 0..max_refinement_steps {
         if !x.iter().all(|value| value.is_finite()) {
             break;
@@ -674,28 +666,17 @@ fn refined_seminormal_solve(
         // [I R; Rᵀ 0] [r; d] = [0; −h] gives RᵀR d = h.
         let (_, x_correction) = factorization.solve_augmented(&zeros, &negated_residual);
         let correction = max_abs(&x_correction);
-        if correction == 0.0 {
-            converged = true;
-            break;
-        }
-        if correction > 0.5 * previous_correction || correction.is_nan() {
+        if !progress.admits(correction) {
             break;
         }
         for (value, delta) in x.iter_mut().zip(&x_correction) {
             *value += delta;
         }
-        refinement_steps += 1;
-        if correction <= f64::EPSILON * max_abs(&x) {
-            converged = true;
+        if progress.accepted(correction, &x) {
             break;
         }
-        previous_correction = correction;
     }
-    AugmentedSolution {
-        x,
-        refinement_steps,
-        converged,
-    }
+    progress.solution(x)
 }
 
 /// `Aᵀ(b − A x) − c` over the accepted (equilibrated) columns, each row's residual and each
@@ -1336,11 +1317,8 @@ struct AugmentedSolution {
     converged: bool,
 }
 
-/// Solves the augmented system for right-hand side `(b, c)` and refines it.
-/// A correction is accepted only while corrections shrink by at least half
-/// per step (the classical stopping rule for mixed-precision refinement,
-/// which also guards against a problem too ill-conditioned to refine); the
-/// loop ends when the correction is below one unit of rounding of `x`.
+/// Solves the augmented system for right-hand side `(b, c)` and refines it, stopping by
+/// [`Refinement`]'s rule.
 fn refined_augmented_solve(
     factorization: &PivotedQr,
     kept_columns: &KeptColumns,
@@ -1349,9 +1327,7 @@ fn refined_augmented_solve(
     max_refinement_steps: usize,
 ) -> AugmentedSolution {
     let (mut r, mut x) = factorization.solve_augmented(b, c);
-    let mut previous_correction = max_abs(&x);
-    let mut refinement_steps = 0;
-    let mut converged = false;
+    let mut progress = Refinement::starting_from(&x);
     for _ in 0..max_refinement_steps {
         // f = b − r − A x and g = c − Aᵀ r, each in double-double. A zero entry of A adds an
         // exact ±0 product with no rounding error, which leaves a double-double sum's value
@@ -1366,13 +1342,7 @@ fn refined_augmented_solve(
         };
         let (r_correction, x_correction) = factorization.solve_augmented(&f, &g);
         let correction = max_abs(&x_correction);
-        if correction == 0.0 {
-            converged = true;
-            break;
-        }
-        // A NaN correction also stops here (every comparison with NaN is false).
-        let shrinking = correction <= 0.5 * previous_correction;
-        if !shrinking {
+        if !progress.admits(correction) {
             break;
         }
         for (value, delta) in x.iter_mut().zip(&x_correction) {
@@ -1381,17 +1351,56 @@ fn refined_augmented_solve(
         for (value, delta) in r.iter_mut().zip(&r_correction) {
             *value += delta;
         }
-        refinement_steps += 1;
-        if correction <= f64::EPSILON * max_abs(&x) {
-            converged = true;
+        if progress.accepted(correction, &x) {
             break;
         }
-        previous_correction = correction;
     }
-    AugmentedSolution {
-        x,
-        refinement_steps,
-        converged,
+    progress.solution(x)
+}
+
+/// The stopping rule both refinements share: a correction is taken only while corrections
+/// shrink by at least half per step (the classical rule for mixed-precision refinement, which
+/// also guards against a problem too ill-conditioned to refine; a NaN correction stops too), and
+/// the refinement has converged when a correction is zero or below one unit of rounding of `x`.
+struct Refinement {
+    previous_correction: f64,
+    steps: usize,
+    converged: bool,
+}
+
+impl Refinement {
+    fn starting_from(x: &[f64]) -> Refinement {
+        Refinement {
+            previous_correction: max_abs(x),
+            steps: 0,
+            converged: false,
+        }
+    }
+
+    /// Whether a correction of this size is to be applied (false ends the refinement).
+    fn admits(&mut self, correction: f64) -> bool {
+        if correction == 0.0 {
+            self.converged = true;
+            return false;
+        }
+        // Every comparison with NaN is false.
+        correction <= 0.5 * self.previous_correction
+    }
+
+    /// Records an applied correction; true when `x` has converged.
+    fn accepted(&mut self, correction: f64, x: &[f64]) -> bool {
+        self.steps += 1;
+        self.previous_correction = correction;
+        self.converged = correction <= f64::EPSILON * max_abs(x);
+        self.converged
+    }
+
+    fn solution(self, x: Vec<f64>) -> AugmentedSolution {
+        AugmentedSolution {
+            x,
+            refinement_steps: self.steps,
+            converged: self.converged,
+        }
     }
 }
 

@@ -35,6 +35,43 @@ impl DesignInput<'_> {
         }
     }
 
+    /// The first non-finite entry over `columns` (design columns, each once), in the order of
+    /// `columns` and then of the rows, as (position in `columns`, row): what a dense check
+    /// column by column reports, for either layout.
+    pub fn first_non_finite(&self, columns: &[usize]) -> Option<(usize, usize)> {
+        match self {
+            DesignInput::Dense(matrix) => {
+                columns.iter().enumerate().find_map(|(position, &column)| {
+                    matrix
+                        .column(column)
+                        .iter()
+                        .position(|value| !value.is_finite())
+                        .map(|row| (position, row))
+                })
+            }
+            DesignInput::Rows(rows) => {
+                let mut position_of = vec![usize::MAX; rows.ncols()];
+                for (position, &column) in columns.iter().enumerate() {
+                    position_of[column] = position;
+                }
+                let mut first: Option<(usize, usize)> = None;
+                for row in 0..rows.nrows() {
+                    let (stored, values) = rows.entries(row);
+                    for (&column, value) in stored.iter().zip(values) {
+                        let position = position_of[column as usize];
+                        if position != usize::MAX
+                            && !value.is_finite()
+                            && first.is_none_or(|(p, _)| position < p)
+                        {
+                            first = Some((position, row));
+                        }
+                    }
+                }
+                first
+            }
+        }
+    }
+
     /// A dense copy of `columns` (for the supportive fits that take one).
     pub fn select_columns(&self, columns: &[usize]) -> DMatrix<f64> {
         match self {

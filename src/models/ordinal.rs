@@ -781,36 +781,7 @@ pub(crate) fn check_finite_design(design: &DMatrix<f64>) -> Result<(), ModelInpu
 }
 
 pub(crate) fn check_finite_columns(design: DesignColumns<'_>) -> Result<(), ModelInputError> {
-    // The first non-finite entry in the order view column, then row.
-    let first = match design.design() {
-        crate::models::DesignInput::Dense(_) => (0..design.ncols()).find_map(|column| {
-            design
-                .column(column)
-                .iter()
-                .position(|x| !x.is_finite())
-                .map(|row| (column, row))
-        }),
-        crate::models::DesignInput::Rows(rows) => {
-            let mut position_of = vec![usize::MAX; rows.ncols()];
-            for (position, &column) in design.design_columns().iter().enumerate() {
-                position_of[column] = position;
-            }
-            let mut first: Option<(usize, usize)> = None;
-            for row in 0..rows.nrows() {
-                let (columns, values) = rows.entries(row);
-                for (&column, value) in columns.iter().zip(values) {
-                    let position = position_of[column as usize];
-                    if position != usize::MAX
-                        && !value.is_finite()
-                        && first.is_none_or(|(p, _)| position < p)
-                    {
-                        first = Some((position, row));
-                    }
-                }
-            }
-            first
-        }
-    };
+    let first = design.design().first_non_finite(design.design_columns());
     match first {
         Some((column, row)) => Err(ModelInputError::NonFiniteDesign { row, column }),
         None => Ok(()),

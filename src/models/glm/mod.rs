@@ -440,34 +440,9 @@ pub(crate) fn prepare<'a>(
         }
         None => (0..n_columns).collect(),
     };
-    // The first non-finite entry in the order column, then row.
-    let non_finite = match design {
-        crate::models::DesignInput::Dense(matrix) => columns.iter().find_map(|&column| {
-            (0..n_rows)
-                .find(|&row| !matrix[(row, column)].is_finite())
-                .map(|row| (column, row))
-        }),
-        crate::models::DesignInput::Rows(rows) => {
-            let mut model_column = vec![false; n_columns];
-            for &column in &columns {
-                model_column[column] = true;
-            }
-            let mut first: Option<(usize, usize)> = None;
-            for row in 0..n_rows {
-                let (stored, values) = rows.entries(row);
-                for (&column, value) in stored.iter().zip(values) {
-                    let column = column as usize;
-                    if model_column[column]
-                        && !value.is_finite()
-                        && first.is_none_or(|(c, _)| column < c)
-                    {
-                        first = Some((column, row));
-                    }
-                }
-            }
-            first
-        }
-    };
+    let non_finite = design
+        .first_non_finite(&columns)
+        .map(|(position, row)| (columns[position], row));
     if let Some((column, row)) = non_finite {
         return Err(GlmError::NonFiniteInput {
             what: "design",
