@@ -40,8 +40,9 @@ pub struct RunOptions {
     /// are put together in plan order. Memory grows with it (one design per analysis in flight).
     pub jobs: usize,
     /// How designs are held ([`design::Layout`]); by their size unless a test says otherwise.
-    /// Not a command-line option: only a linear fit's last bits can depend on it (its
-    /// row-block route is a different factorization; `tests/design_layouts.rs`).
+    /// Not a command-line option: only last bits can depend on it, of a linear fit (its
+    /// row-block route is a different factorization) and of an influence-function variance of
+    /// standardised means (summed by rows); `tests/design_layouts.rs`.
     pub layout: design::Layout,
 }
 
